@@ -1,0 +1,102 @@
+"""``fit_epochs``: the ready training loop for users without one of their own.
+
+>>> fit = fit_epochs(epochs=30, optimizer=lambda params: torch.optim.SGD(params, lr=0.05))
+>>> fit.epochs
+30
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Iterable
+from typing import Any
+
+import torch
+from torch import nn
+from tqdm.auto import tqdm
+
+from .generation import Generation, model_device, move_to
+
+OptimizerFactory = Callable[[Iterable[nn.Parameter]], torch.optim.Optimizer]
+SchedulerFactory = Callable[[torch.optim.Optimizer], Any]
+
+
+class EpochFit:
+    """Train ``gen.model`` for a fixed number of epochs; see :func:`fit_epochs`."""
+
+    def __init__(
+        self,
+        epochs: int,
+        optimizer: OptimizerFactory,
+        scheduler: SchedulerFactory | None = None,
+        progress: bool | None = None,
+        device: str | torch.device | None = None,
+    ) -> None:
+        problems = []
+        if not isinstance(epochs, int) or isinstance(epochs, bool) or epochs < 1:
+            problems.append(f"epochs should be a positive integer, but got epochs={epochs!r}")
+        if not callable(optimizer):
+            problems.append(
+                "optimizer should be a factory such as lambda params: torch.optim.SGD(params, "
+                f"lr=0.05), but got {optimizer!r}"
+            )
+        if scheduler is not None and not callable(scheduler):
+            problems.append(
+                "scheduler should be a factory such as lambda opt: "
+                f"torch.optim.lr_scheduler.CosineAnnealingLR(opt, 30), but got {scheduler!r}"
+            )
+        if problems:
+            raise ValueError("; ".join(problems))
+        self.epochs = epochs
+        self.optimizer = optimizer
+        self.scheduler = scheduler
+        self.progress = progress
+        self.device = None if device is None else torch.device(device)
+
+    def __call__(self, gen: Generation) -> nn.Module:
+        model = gen.model if self.device is None else gen.model.to(self.device)
+        device = model_device(model)
+        optimizer = self.optimizer(model.parameters())
+        scheduler = self.scheduler(optimizer) if self.scheduler is not None else None
+        model.train()
+        # disable=None lets tqdm switch itself off when stderr is not a terminal.
+        disable = None if self.progress is None else not self.progress
+        bar = tqdm(
+            range(self.epochs),
+            desc=f"generation {gen.index}",
+            unit="epoch",
+            leave=False,
+            disable=disable,
+        )
+        for epoch in bar:
+            total = torch.zeros((), device=device)
+            batches = 0
+            for inputs, labels, targets in gen.loader:
+                loss = gen.loss(model(move_to(inputs, device)), labels, targets)
+                optimizer.zero_grad(set_to_none=True)
+                loss.backward()
+                optimizer.step()
+                total += loss.detach()
+                batches += 1
+            if scheduler is not None:
+                scheduler.step()
+            mean = float(total) / max(batches, 1)  # one device sync per epoch, not per step
+            gen.log_epoch(epoch, loss=mean)
+            bar.set_postfix(loss=f"{mean:.4f}", refresh=False)
+        bar.close()
+        return model
+
+
+def fit_epochs(
+    epochs: int,
+    optimizer: OptimizerFactory,
+    scheduler: SchedulerFactory | None = None,
+    progress: bool | None = None,
+    device: str | torch.device | None = None,
+) -> EpochFit:
+    """A fit function for :meth:`Lineage.run`: ``epochs`` epochs of ``optimizer(params)``.
+
+    ``scheduler(optimizer)`` (optional) is stepped once per epoch. ``progress`` None shows a tqdm
+    bar only when stderr is a terminal; True or False forces it. ``device`` moves each fresh
+    student there (default: wherever ``model_fn`` put it); batches follow the model.
+    """
+    return EpochFit(epochs, optimizer, scheduler, progress, device)

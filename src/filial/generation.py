@@ -1,0 +1,254 @@
+"""One generation: a fresh student, its wrapped loader, its loss, and ``finish``.
+
+A :class:`Generation` is handed out by :class:`~filial.lineage.Lineage`; the user trains
+``gen.model`` on ``gen.loader`` with ``gen.loss`` and calls ``gen.finish(model)``. ``finish``
+evaluates the student (held-out, training set against the original labels, test), runs the
+teacher pass over the training set in index order, and writes, each atomically and in this order,
+the checkpoint, the held-out outputs and the target store. It then hands the record to the
+lineage, which adds what needs earlier generations (ensemble, agreement) and decides. This module
+knows nothing about the loop.
+"""
+
+from __future__ import annotations
+
+import time
+from collections.abc import Callable
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import torch
+import torch.nn.functional as F
+from torch import nn
+from torch.utils.data import DataLoader
+
+from ._io import atomic_write
+from .checkpoint import save_checkpoint, unwrap
+from .data import derive_seed, sequential_loader, training_loader
+from .losses import StudentLoss
+from .metrics import Metric, default_metric
+from .store import TargetStore
+
+HELDOUT_FILE = "heldout.npy"
+CHECKPOINT_FILE = "student.pt"
+
+
+@dataclass(frozen=True)
+class Setup:
+    """What every generation of one lineage shares (built once by the lineage)."""
+
+    run_dir: Path
+    train_loader: DataLoader
+    heldout_loader: DataLoader
+    test_loader: DataLoader | None
+    loss: StudentLoss
+    metric: Metric | None
+    store_dtype: str
+    views: int
+    fingerprint: str
+    seed: int
+
+
+@dataclass
+class Predictions:
+    """A model's outputs on a whole loader, in dataset index order."""
+
+    outputs: torch.Tensor  # (N, C) float32 on the CPU
+    labels: torch.Tensor  # (N, ...) on the CPU
+
+
+def move_to(value: Any, device: torch.device) -> Any:
+    """Move tensors inside (nested tuples, lists, dicts of) ``value`` to ``device``."""
+    if isinstance(value, torch.Tensor):
+        return value.to(device, non_blocking=True) if value.device != device else value
+    if isinstance(value, (list, tuple)):
+        moved = [move_to(v, device) for v in value]
+        return type(value)(moved) if not hasattr(value, "_fields") else type(value)(*moved)
+    if isinstance(value, dict):
+        return {k: move_to(v, device) for k, v in value.items()}
+    return value
+
+
+def model_device(model: nn.Module) -> torch.device:
+    for tensor in model.parameters():
+        return tensor.device
+    for tensor in model.buffers():
+        return tensor.device
+    return torch.device("cpu")
+
+
+def predict(model: nn.Module, loader: DataLoader, seed: int) -> Predictions:
+    """Outputs of ``model`` (in eval mode, restored afterwards) over ``loader``'s whole dataset."""
+    module = unwrap(model)
+    device = model_device(module)
+    size = len(loader.dataset)  # type: ignore[arg-type]
+    outputs: torch.Tensor | None = None
+    labels: torch.Tensor | None = None
+    seen = torch.zeros(size, dtype=torch.bool)
+    was_training = module.training
+    module.eval()
+    try:
+        with torch.inference_mode():
+            for indices, inputs, batch_labels in sequential_loader(loader, seed):
+                out = module(move_to(inputs, device))
+                if not isinstance(out, torch.Tensor) or out.ndim != 2:
+                    shape = tuple(out.shape) if isinstance(out, torch.Tensor) else type(out)
+                    raise ValueError(
+                        "the model must return a tensor of shape (batch, outputs), but returned "
+                        f"{shape}"
+                    )
+                out = out.detach().float().cpu()
+                batch_labels = torch.as_tensor(batch_labels).cpu()
+                if outputs is None:
+                    outputs = torch.empty((size, out.shape[1]), dtype=torch.float32)
+                    labels = torch.empty((size, *batch_labels.shape[1:]), dtype=batch_labels.dtype)
+                elif out.shape[1] != outputs.shape[1]:
+                    raise ValueError(
+                        f"the model's output width changed within one pass "
+                        f"({outputs.shape[1]} then {out.shape[1]})"
+                    )
+                outputs[indices] = out
+                labels[indices] = batch_labels
+                seen[indices] = True
+    finally:
+        module.train(was_training)
+    if outputs is None or labels is None or not bool(seen.all()):
+        missing = int((~seen).sum())
+        raise RuntimeError(f"the evaluation pass missed {missing} of {size} samples")
+    return Predictions(outputs, labels)
+
+
+def _entropy(outputs: torch.Tensor, temperature: float) -> float:
+    logp = F.log_softmax(outputs / temperature, dim=1)
+    return float(-(logp.exp() * logp).sum(dim=1).mean())
+
+
+def _finite_module(model: nn.Module) -> bool:
+    return all(bool(torch.isfinite(p).all()) for p in unwrap(model).parameters())
+
+
+class Generation:
+    """One generation of a lineage. ``index`` 0 learns from labels; later ones from a teacher.
+
+    Attributes: ``index``, ``teacher`` (the teacher's generation index, or None), ``model`` (a
+    freshly initialised student from ``model_fn``), ``store`` (the teacher's targets, or None).
+    """
+
+    def __init__(
+        self,
+        index: int,
+        model: nn.Module,
+        setup: Setup,
+        teacher: int | None,
+        store: TargetStore | None,
+        on_finish: Callable[[Generation, dict[str, Any], Predictions], dict[str, Any]],
+    ) -> None:
+        self.index = index
+        self.model = model
+        self.teacher = teacher
+        self.store = store
+        self.history: list[dict[str, float]] = []
+        self.record: dict[str, Any] | None = None
+        self._setup = setup
+        self._on_finish = on_finish
+        self._loader: DataLoader | None = None
+        self._started = time.perf_counter()
+
+    @property
+    def directory(self) -> Path:
+        return self._setup.run_dir / f"gen{self.index}"
+
+    @property
+    def finished(self) -> bool:
+        return self.record is not None
+
+    @property
+    def loader(self) -> DataLoader:
+        """The user's training loader, rebuilt to yield ``(inputs, labels, targets)``."""
+        if self._loader is None:
+            self._loader = training_loader(self._setup.train_loader, self.store)
+        return self._loader
+
+    def loss(
+        self, outputs: torch.Tensor, labels: torch.Tensor, targets: torch.Tensor | None
+    ) -> torch.Tensor:
+        """The generation's training loss; ``targets`` is None in generation 0."""
+        return self._setup.loss(outputs, labels, targets)
+
+    def log_epoch(self, epoch: int, **scalars: float) -> None:
+        """Record per-epoch scalars (``loss=...``); they go into the generation's record."""
+        self.history.append({"epoch": int(epoch), **{k: float(v) for k, v in scalars.items()}})
+
+    def finish(self, model: nn.Module | None = None) -> dict[str, Any]:
+        """Evaluate, cache targets, checkpoint, and let the lineage decide; returns the record."""
+        if self.finished:
+            raise RuntimeError(f"generation {self.index} is already finished")
+        model = self.model if model is None else model
+        if not isinstance(model, nn.Module):
+            raise TypeError(f"finish() needs the trained nn.Module, but got {type(model).__name__}")
+        setup = self._setup
+        seed = derive_seed(setup.seed, self.index, 1)
+        train = predict(model, setup.train_loader, seed)
+        heldout = predict(model, setup.heldout_loader, seed)
+        test = predict(model, setup.test_loader, seed) if setup.test_loader is not None else None
+        metric = setup.metric or default_metric(train.labels)
+        diverged = not (
+            _finite_module(model)
+            and bool(torch.isfinite(train.outputs).all())
+            and bool(torch.isfinite(heldout.outputs).all())
+        )
+        record: dict[str, Any] = {
+            "generation": self.index,
+            "teacher": self.teacher,
+            "mode": "cached",
+            "heldout": None if diverged else metric(heldout.outputs, heldout.labels),
+            "test": None,
+            "train": None if diverged else metric(train.outputs, train.labels),
+            "ensemble": None,
+            "agreement": None,
+            "diverged": diverged,
+        }
+        if test is not None and not diverged:
+            record["test"] = metric(test.outputs, test.labels)
+        if not diverged:
+            record.update(self._target_statistics(train))
+        self.directory.mkdir(parents=True, exist_ok=True)
+        teacher_sha = save_checkpoint(model, self.directory / CHECKPOINT_FILE)
+        atomic_write(
+            self.directory / HELDOUT_FILE,
+            lambda handle: np.save(handle, heldout.outputs.numpy(), allow_pickle=False),
+        )
+        if not diverged:
+            outputs = train.outputs.numpy()[:, None, :].repeat(setup.views, axis=1)
+            TargetStore.write(
+                self.directory,
+                outputs,
+                dtype=setup.store_dtype,
+                fingerprint=setup.fingerprint,
+                teacher_sha256=teacher_sha,
+            )
+        record["checkpoint"] = f"gen{self.index}/{CHECKPOINT_FILE}"
+        record["checkpoint_sha256"] = teacher_sha
+        record["epochs"] = list(self.history)
+        record["seconds"] = time.perf_counter() - self._started
+        self.record = self._on_finish(self, record, heldout)
+        return self.record
+
+    def _target_statistics(self, train: Predictions) -> dict[str, Any]:
+        stats: dict[str, Any] = {}
+        outputs, labels = train.outputs, train.labels
+        if self._setup.loss.kind == "ce":
+            stats["target_entropy"] = _entropy(outputs, self._setup.loss.temperature)
+        else:
+            stats["output_norm"] = float(outputs.norm(dim=1).mean())
+        if outputs.shape[1] > 1 and not labels.is_floating_point():
+            predicted = torch.bincount(outputs.argmax(dim=1), minlength=outputs.shape[1])
+            stats["prediction_share"] = float(predicted.max()) / outputs.shape[0]
+            stats["label_share"] = float(torch.bincount(labels.long().flatten()).max()) / len(
+                labels
+            )
+        return stats
+
+    def __repr__(self) -> str:
+        return f"Generation(index={self.index}, teacher={self.teacher}, finished={self.finished})"

@@ -1,0 +1,464 @@
+"""The generation loop: :class:`Lineage` hands out generations, records them, decides, resumes.
+
+Hook mode is ``for gen in lineage: ...train gen.model...; gen.finish(model)``; managed mode is
+``lineage.run(fit)`` with a fit function such as :func:`filial.fit_epochs`. Both go through
+:meth:`Lineage.__iter__`, so they share one engine.
+
+The state of a run lives in ``RUN/lineage.json`` (settings, one record per finished generation,
+the decision), rewritten atomically after every generation. A generation counts as finished only
+once its record is there, so after a crash the run resumes at the first generation without one.
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+import random
+import shutil
+import weakref
+from collections.abc import Callable, Iterator
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import torch
+from torch import nn
+from torch.utils.data import DataLoader
+
+from ._io import atomic_write, atomic_write_json, sweep_temporaries
+from .checkpoint import load_checkpoint
+from .data import check_loader, derive_seed, fingerprint
+from .generation import HELDOUT_FILE, Generation, Predictions, Setup, predict
+from .losses import StudentLoss
+from .metrics import Metric, default_metric, metric_name
+from .stopping import StopRule
+from .store import STORE_DTYPES, StoreError, TargetStore
+
+log = logging.getLogger("filial")
+
+STATE_FILE = "lineage.json"
+STATE_FORMAT = "filial.lineage/1"
+HELDOUT_LABELS_FILE = "heldout_labels.npy"
+
+
+@dataclass
+class Result:
+    """What a lineage found: one record per finished generation, the best one, and why it stopped."""
+
+    records: list[dict[str, Any]]
+    best: int | None
+    stop_reason: str | None
+    run_dir: Path
+    model_fn: Callable[[], nn.Module]
+
+    def checkpoint(self, generation: int | None = None) -> Path:
+        """Path of a generation's checkpoint (default: the best)."""
+        generation = self.best if generation is None else generation
+        for record in self.records:
+            if record["generation"] == generation:
+                return self.run_dir / record["checkpoint"]
+        raise ValueError(f"no finished generation {generation} in {self.run_dir}")
+
+    def best_model(self) -> nn.Module:
+        """A fresh ``model_fn()`` module holding the best generation's weights (on the CPU)."""
+        if self.best is None:
+            raise ValueError("no generation finished without diverging, so there is no best model")
+        record = next(r for r in self.records if r["generation"] == self.best)
+        model = self.model_fn()
+        model.load_state_dict(
+            load_checkpoint(self.run_dir / record["checkpoint"], record.get("checkpoint_sha256"))
+        )
+        return model
+
+
+def _seed_everything(seed: int) -> None:
+    torch.manual_seed(seed)
+    random.seed(seed)
+    np.random.seed(seed)
+
+
+def _ensemble(stack: list[torch.Tensor], kind: str) -> torch.Tensor:
+    """Averaged outputs of several generations: probabilities for ce (returned as log-probs,
+    which are valid logits for any metric), raw outputs for l2."""
+    if kind == "ce":
+        probs = torch.stack([torch.softmax(o, dim=1) for o in stack]).mean(dim=0)
+        return probs.clamp_min(1e-30).log()
+    return torch.stack(stack).mean(dim=0)
+
+
+class Lineage:
+    """Multi-generation self-distillation around the user's own training code.
+
+    ``model_fn()`` builds a fresh model; it is called once per generation under a seed derived from
+    ``(seed, generation)`` (torch's, Python's and numpy's global generators are seeded then, so
+    identical settings give identical runs on the CPU). ``train_loader`` and ``heldout_loader``
+    are the user's DataLoaders over map-style datasets of ``(input, label)`` samples; the held-out
+    data decide when to stop and which generation to keep, so never pass the test set there.
+    ``test_loader`` is evaluated and reported, never used for a decision.
+
+    Example (hook mode)::
+
+        lineage = filial.Lineage(make_model, train_loader, heldout_loader, run_dir="runs/a")
+        for gen in lineage:
+            model, opt = gen.model, torch.optim.SGD(gen.model.parameters(), lr=0.05)
+            for epoch in range(30):
+                for inputs, labels, targets in gen.loader:   # targets is None in generation 0
+                    loss = gen.loss(model(inputs), labels, targets)
+                    opt.zero_grad(); loss.backward(); opt.step()
+            gen.finish(model)
+        print(lineage.result.best)
+
+    An existing run directory with the same settings is resumed after its last finished
+    generation; different settings are refused. ``fresh=True`` deletes an existing run directory
+    (only one that filial made) and starts over.
+    """
+
+    def __init__(
+        self,
+        model_fn: Callable[[], nn.Module],
+        train_loader: DataLoader,
+        heldout_loader: DataLoader,
+        *,
+        run_dir: str | Path = "runs/x",
+        targets: str = "ce",
+        temperature: float = 1.0,
+        label_weight: float = 0.0,
+        max_generations: int = 8,
+        patience: int = 2,
+        min_gain: float = 0.0,
+        views: int = 1,
+        store_dtype: str = "float16",
+        top_k: int | None = None,
+        metric: Metric | None = None,
+        test_loader: DataLoader | None = None,
+        seed: int = 0,
+        fresh: bool = False,
+    ) -> None:
+        problems: list[Exception] = []
+
+        def attempt(check: Callable[[], Any]) -> Any:
+            try:
+                return check()
+            except (TypeError, ValueError) as exc:
+                problems.append(exc)
+                return None
+
+        if not callable(model_fn):
+            problems.append(TypeError(f"model_fn must be callable, but got {model_fn!r}"))
+        attempt(lambda: check_loader(train_loader, "train_loader"))
+        attempt(lambda: check_loader(heldout_loader, "heldout_loader"))
+        if test_loader is not None:
+            attempt(lambda: check_loader(test_loader, "test_loader"))
+        if heldout_loader is train_loader or (
+            isinstance(heldout_loader, DataLoader)
+            and isinstance(train_loader, DataLoader)
+            and heldout_loader.dataset is train_loader.dataset
+        ):
+            problems.append(
+                ValueError(
+                    "heldout_loader is the training loader (or reads the same dataset object); "
+                    "held-out evidence must come from samples the students do not train on. "
+                    "Split off a held-out set, e.g. with torch.utils.data.random_split."
+                )
+            )
+        loss = attempt(lambda: StudentLoss(targets, temperature, label_weight))
+        rule = attempt(lambda: StopRule(max_generations, patience, min_gain))
+        if not isinstance(views, int) or views < 1:
+            problems.append(ValueError(f"views should be an integer >= 1, but got views={views!r}"))
+        elif views != 1:
+            problems.append(
+                ValueError(
+                    f"views={views}: several cached views per sample need replayed augmentation, "
+                    "which this version of filial does not have yet; use views=1"
+                )
+            )
+        if store_dtype not in STORE_DTYPES:
+            problems.append(
+                ValueError(f"store_dtype must be one of {STORE_DTYPES}, but got {store_dtype!r}")
+            )
+        if top_k is not None:
+            problems.append(
+                ValueError(
+                    "top_k=... compact targets are not available in this version of filial; "
+                    "use top_k=None"
+                    + (" (and top_k never goes with targets='l2')" if targets == "l2" else "")
+                )
+            )
+        if metric is not None and not callable(metric):
+            problems.append(TypeError(f"metric must be callable or None, but got {metric!r}"))
+        if not isinstance(seed, int) or isinstance(seed, bool) or seed < 0:
+            problems.append(ValueError(f"seed should be an integer >= 0, but got seed={seed!r}"))
+        if problems:
+            if len(problems) == 1:
+                raise problems[0]
+            raise ValueError(
+                "several settings are wrong:\n" + "\n".join(f"  - {p}" for p in problems)
+            )
+        assert loss is not None and rule is not None  # guaranteed by the checks above
+
+        self.model_fn = model_fn
+        self.run_dir = Path(run_dir)
+        self.rule = rule
+        train_print = fingerprint(train_loader)
+        self.settings: dict[str, Any] = {
+            "targets": targets,
+            "temperature": float(temperature),
+            "label_weight": float(label_weight),
+            "max_generations": max_generations,
+            "patience": patience,
+            "min_gain": float(min_gain),
+            "views": views,
+            "store_dtype": store_dtype,
+            "top_k": top_k,
+            "seed": seed,
+            "metric": metric_name(metric),
+            "model_fn": metric_name(model_fn),
+            "train_size": len(train_loader.dataset),  # type: ignore[arg-type]
+            "heldout_size": len(heldout_loader.dataset),  # type: ignore[arg-type]
+            "test_size": None if test_loader is None else len(test_loader.dataset),  # type: ignore[arg-type]
+            "train_fingerprint": train_print,
+            "heldout_fingerprint": fingerprint(heldout_loader),
+        }
+        self._setup = Setup(
+            run_dir=self.run_dir,
+            train_loader=train_loader,
+            heldout_loader=heldout_loader,
+            test_loader=test_loader,
+            loss=loss,
+            metric=metric,
+            store_dtype=store_dtype,
+            views=views,
+            fingerprint=train_print,
+            seed=seed,
+        )
+        self._records: list[dict[str, Any]] = []
+        self._decision: dict[str, Any] | None = None
+        self._heldout: dict[int, torch.Tensor] = {}
+        self._fresh_store: TargetStore | None = None
+        self._previous_model: weakref.ref[nn.Module] | None = None
+        self._open_run_dir(fresh)
+
+    # -- the run directory -------------------------------------------------------------------
+
+    @property
+    def state_path(self) -> Path:
+        return self.run_dir / STATE_FILE
+
+    def _open_run_dir(self, fresh: bool) -> None:
+        run_dir = self.run_dir
+        if run_dir.exists() and not run_dir.is_dir():
+            raise ValueError(f"run_dir {run_dir} exists and is not a directory")
+        is_run = self.state_path.is_file()
+        if run_dir.is_dir() and not is_run and any(run_dir.iterdir()):
+            raise ValueError(
+                f"run_dir {run_dir} is not empty and holds no {STATE_FILE}: it is not a filial "
+                "run directory, and filial will not write into it. Choose another run_dir."
+            )
+        if fresh and is_run:
+            log.warning("fresh=True: deleting the earlier run in %s", run_dir)
+            shutil.rmtree(run_dir)
+            is_run = False
+        if not is_run:
+            run_dir.mkdir(parents=True, exist_ok=True)
+            self._write_state()
+            return
+        for path in sweep_temporaries(run_dir):
+            log.warning("removed %s, a temporary file left by a process that died", path)
+        state = self._read_state()
+        differences = [
+            f"{key}: {state['settings'].get(key)!r} in the run, {value!r} now"
+            for key, value in self.settings.items()
+            if state["settings"].get(key) != value
+        ]
+        if differences:
+            raise ValueError(
+                f"{run_dir} holds a run made with other settings, so it cannot be resumed:\n  "
+                + "\n  ".join(differences)
+                + "\nUse the run's settings, another run_dir, or fresh=True to start over."
+            )
+        self._records = list(state["records"])
+        self._decision = state.get("decision")
+        if self._records:
+            log.info(
+                "resuming %s after generation %d", run_dir, self._records[-1]["generation"]
+            )
+
+    def _read_state(self) -> dict[str, Any]:
+        import json
+
+        try:
+            state = json.loads(self.state_path.read_text(encoding="utf-8"))
+        except (OSError, ValueError) as exc:
+            raise ValueError(f"{self.state_path} cannot be read ({exc})") from exc
+        if not isinstance(state, dict) or state.get("format") != STATE_FORMAT:
+            raise ValueError(f"{self.state_path} is not a filial lineage file ({STATE_FORMAT})")
+        return state
+
+    def _write_state(self) -> None:
+        atomic_write_json(
+            self.state_path,
+            {
+                "format": STATE_FORMAT,
+                "settings": self.settings,
+                "records": self._records,
+                "decision": self._decision,
+            },
+        )
+
+    # -- the loop ----------------------------------------------------------------------------
+
+    @property
+    def done(self) -> bool:
+        """True once the stop rule has stopped the lineage."""
+        return bool(self._decision and self._decision.get("stop"))
+
+    def __iter__(self) -> Iterator[Generation]:
+        while not self.done:
+            gen = self._begin(len(self._records))
+            yield gen
+            if not gen.finished:
+                raise RuntimeError(
+                    f"generation {gen.index} was not finished: call gen.finish(model) after "
+                    "training each generation, before the loop moves on"
+                )
+
+    def run(self, fit: Callable[[Generation], nn.Module | None]) -> Result:
+        """Managed mode: ``fit(gen)`` trains ``gen.model`` (and may return the trained module)."""
+        if not callable(fit):
+            raise TypeError(f"run() needs a fit function such as filial.fit_epochs(...), got {fit!r}")
+        for gen in self:
+            model = fit(gen)
+            gen.finish(model if model is not None else gen.model)
+        return self.result
+
+    @property
+    def result(self) -> Result:
+        """The records so far, the best generation and (once stopped) the stop reason."""
+        decision = self._decision or {}
+        return Result(
+            records=list(self._records),
+            best=StopRule.best(self._records),
+            stop_reason=decision.get("reason") if decision.get("stop") else None,
+            run_dir=self.run_dir,
+            model_fn=self.model_fn,
+        )
+
+    def _begin(self, index: int) -> Generation:
+        teacher = self._records[-1]["generation"] if self._records else None
+        store = self._teacher_store(self._records[-1]) if self._records else None
+        _seed_everything(derive_seed(self.settings["seed"], index))
+        model = self.model_fn()
+        if not isinstance(model, nn.Module):
+            raise TypeError(f"model_fn must return an nn.Module, but returned {type(model).__name__}")
+        previous = self._previous_model() if self._previous_model is not None else None
+        if previous is not None:
+            if previous is model:
+                raise ValueError(
+                    "model_fn returned the same module object as for the previous generation; it "
+                    "must build a new, freshly initialised module on every call"
+                )
+            shared = {id(p) for p in previous.parameters()} & {id(p) for p in model.parameters()}
+            if shared:
+                raise ValueError(
+                    f"model_fn returned a module sharing {len(shared)} parameter tensors with the "
+                    "previous generation's; every generation needs its own parameters"
+                )
+        self._previous_model = weakref.ref(model)
+        return Generation(index, model, self._setup, teacher, store, self._record)
+
+    def _teacher_store(self, record: dict[str, Any]) -> TargetStore:
+        """The targets of the teacher ``record``, verified; rebuilt from its checkpoint if damaged."""
+        directory = self.run_dir / f"gen{record['generation']}"
+        fresh = self._fresh_store
+        if fresh is not None and fresh.directory == directory:
+            return fresh
+        store = TargetStore(directory)
+        expected = self._setup.fingerprint
+        try:
+            store.verify(fingerprint=expected)
+            if store.manifest["teacher_sha256"] != record.get("checkpoint_sha256"):
+                raise StoreError(f"the targets in {directory} were not made by its checkpoint")
+            return store
+        except StoreError as exc:
+            if store.exists() and store.manifest.get("fingerprint") != expected:
+                raise  # other training data: recomputing would hide the user's mistake
+            log.warning(
+                "%s; recomputing generation %d's targets from its checkpoint",
+                exc,
+                record["generation"],
+            )
+        model = self.model_fn()
+        model.load_state_dict(
+            load_checkpoint(self.run_dir / record["checkpoint"], record.get("checkpoint_sha256"))
+        )
+        seed = derive_seed(self.settings["seed"], record["generation"], 1)
+        outputs = predict(model, self._setup.train_loader, seed).outputs.numpy()
+        return TargetStore.write(
+            directory,
+            outputs[:, None, :].repeat(self._setup.views, axis=1),
+            dtype=self._setup.store_dtype,
+            fingerprint=expected,
+            teacher_sha256=record["checkpoint_sha256"],
+        )
+
+    def _heldout_outputs(self, generation: int) -> torch.Tensor:
+        if generation not in self._heldout:
+            path = self.run_dir / f"gen{generation}" / HELDOUT_FILE
+            self._heldout[generation] = torch.from_numpy(np.load(path, allow_pickle=False))
+        return self._heldout[generation]
+
+    def _record(
+        self, gen: Generation, record: dict[str, Any], heldout: Predictions
+    ) -> dict[str, Any]:
+        """Called by ``gen.finish``: add cross-generation figures, decide, write the state."""
+        if gen.index != len(self._records) or self.done:
+            raise RuntimeError(
+                f"generation {gen.index} finished out of turn (the lineage has "
+                f"{len(self._records)} finished generations)"
+            )
+        self._heldout[gen.index] = heldout.outputs
+        labels_path = self.run_dir / HELDOUT_LABELS_FILE
+        if not labels_path.is_file():
+            atomic_write(
+                labels_path,
+                lambda handle: np.save(handle, heldout.labels.numpy(), allow_pickle=False),
+            )
+        if not record["diverged"]:
+            metric = self._setup.metric or default_metric(heldout.labels)
+            members = [r["generation"] for r in self._records if not r.get("diverged")]
+            stack = [self._heldout_outputs(g) for g in members] + [heldout.outputs]
+            record["ensemble"] = metric(_ensemble(stack, self.settings["targets"]), heldout.labels)
+            if gen.teacher is not None and heldout.outputs.shape[1] > 1:
+                teacher = self._heldout_outputs(gen.teacher)
+                agree = heldout.outputs.argmax(dim=1) == teacher.argmax(dim=1)
+                record["agreement"] = float(agree.double().mean())
+            self._fresh_store = TargetStore(gen.directory)
+        decision = self.rule.decide([*self._records, record])
+        if decision.stop:
+            record["stop"] = {"reason": decision.reason, "best": decision.best, **decision.detail}
+        self._records.append(record)
+        self._decision = {
+            "stop": decision.stop,
+            "reason": decision.reason,
+            "best": decision.best,
+            "detail": decision.detail,
+        }
+        self._write_state()
+        log.info(
+            "generation %d: held-out %s, train vs labels %s, ensemble %s%s",
+            gen.index,
+            _fmt(record["heldout"]),
+            _fmt(record["train"]),
+            _fmt(record["ensemble"]),
+            f"; stop ({decision.reason}), best generation {decision.best}" if decision.stop else "",
+        )
+        return record
+
+
+def _fmt(value: Any) -> str:
+    if value is None:
+        return "-"
+    if isinstance(value, float) and not math.isfinite(value):
+        return str(value)
+    return f"{value:.4f}"

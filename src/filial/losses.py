@@ -1,0 +1,150 @@
+"""The two student losses: squared error on outputs (``"l2"``) and soft cross-entropy (``"ce"``).
+
+``l2``
+    Generation 0 regresses on one-hot labels (integer labels) or on the labels themselves
+    (floating-point labels: regression). Students regress on the teacher's raw outputs. The loss is
+    the mean over the batch of the per-sample sum of squared errors.
+``ce``
+    Generation 0 uses cross-entropy on the labels. Students use
+    ``T**2 * mean_b( -sum_c softmax(v/T)_c * log_softmax(z/T)_c )`` for student logits ``z`` and
+    teacher logits ``v`` (Hinton, Vinyals & Dean 2015, "Distilling the knowledge in a neural
+    network"; the ``T**2`` keeps gradient magnitudes comparable across temperatures).
+
+In students the two terms are mixed as ``label_weight * label_term + (1 - label_weight) *
+teacher_term``. ``label_weight`` is not clamped to [0, 1]: a negative value (teacher weight above
+one) has been reported to help under heavy label noise (Das & Sanghavi, ICML 2023).
+
+>>> import torch
+>>> z = torch.tensor([[2.0, 0.0]]); v = torch.tensor([[2.0, 0.0]])
+>>> round(float(soft_cross_entropy(z, v, temperature=1.0)), 4)  # = entropy of softmax(v)
+0.1269
+"""
+
+from __future__ import annotations
+
+import math
+
+import torch
+import torch.nn.functional as F
+
+LOSS_KINDS = ("ce", "l2")
+
+
+def squared_error(outputs: torch.Tensor, targets: torch.Tensor) -> torch.Tensor:
+    """Mean over the batch of the per-sample sum of squared errors."""
+    diff = outputs - targets
+    return diff.pow(2).reshape(diff.shape[0], -1).sum(dim=1).mean()
+
+
+def soft_cross_entropy(
+    outputs: torch.Tensor, targets: torch.Tensor, temperature: float
+) -> torch.Tensor:
+    """``T**2`` times the batch mean of the cross-entropy from softmax(targets/T) to outputs/T."""
+    t = float(temperature)
+    teacher = F.softmax(targets / t, dim=-1)
+    return -(teacher * F.log_softmax(outputs / t, dim=-1)).sum(dim=-1).mean() * (t * t)
+
+
+def _is_integer(labels: torch.Tensor) -> bool:
+    return not (labels.is_floating_point() or labels.is_complex())
+
+
+class StudentLoss:
+    """``loss(outputs, labels, targets)`` for one lineage's settings; ``targets`` None = labels only.
+
+    The first call checks the labels once (their type and range against the output width), so
+    a mistake is named in words instead of surfacing as an index error deep in a kernel.
+    """
+
+    def __init__(self, kind: str, temperature: float = 1.0, label_weight: float = 0.0) -> None:
+        if kind not in LOSS_KINDS:
+            raise ValueError(f"targets must be one of {LOSS_KINDS}, but got targets={kind!r}")
+        if not isinstance(temperature, (int, float)) or not math.isfinite(temperature) or (
+            temperature <= 0
+        ):
+            raise ValueError(
+                f"temperature should be a positive finite number, but got temperature={temperature!r}"
+            )
+        if not isinstance(label_weight, (int, float)) or not math.isfinite(label_weight):
+            raise ValueError(
+                f"label_weight should be a finite number, but got label_weight={label_weight!r}"
+            )
+        self.kind = kind
+        self.temperature = float(temperature)
+        self.label_weight = float(label_weight)
+        self._checked = False
+
+    def check(self, outputs: torch.Tensor, labels: torch.Tensor) -> None:
+        """Raise a clear error when labels and outputs cannot go together."""
+        if not isinstance(outputs, torch.Tensor) or outputs.ndim != 2:
+            shape = tuple(outputs.shape) if isinstance(outputs, torch.Tensor) else type(outputs)
+            raise ValueError(
+                f"the model must return a tensor of shape (batch, outputs), but returned {shape}"
+            )
+        if not isinstance(labels, torch.Tensor):
+            raise TypeError(f"labels must be a tensor, but the batch held {type(labels).__name__}")
+        if labels.shape[0] != outputs.shape[0]:
+            raise ValueError(
+                f"the batch has {labels.shape[0]} labels but the model returned "
+                f"{outputs.shape[0]} rows"
+            )
+        width = outputs.shape[1]
+        if _is_integer(labels):
+            if labels.ndim != 1:
+                raise ValueError(
+                    f"integer labels must have shape (batch,), but got {tuple(labels.shape)}"
+                )
+            if labels.numel():
+                low, high = int(labels.min()), int(labels.max())
+                if low < 0 or high >= width:
+                    raise ValueError(
+                        f"labels range over [{low}, {high}] but the model has {width} outputs: "
+                        f"class labels must lie in [0, {width - 1}]. Widen the model's last "
+                        "layer or relabel the classes from 0."
+                    )
+        elif self.kind == "ce":
+            raise ValueError(
+                "targets='ce' needs integer class labels, but the labels are floating point. "
+                "Use targets='l2' for regression."
+            )
+        elif labels.numel() != outputs.numel():
+            raise ValueError(
+                f"regression labels of shape {tuple(labels.shape)} do not match outputs of shape "
+                f"{tuple(outputs.shape)}"
+            )
+
+    def label_term(self, outputs: torch.Tensor, labels: torch.Tensor) -> torch.Tensor:
+        if self.kind == "ce":
+            return F.cross_entropy(outputs, labels)
+        if _is_integer(labels):
+            return squared_error(outputs, F.one_hot(labels, outputs.shape[1]).to(outputs.dtype))
+        return squared_error(outputs, labels.reshape(outputs.shape).to(outputs.dtype))
+
+    def teacher_term(self, outputs: torch.Tensor, targets: torch.Tensor) -> torch.Tensor:
+        if self.kind == "ce":
+            return soft_cross_entropy(outputs, targets, self.temperature)
+        return squared_error(outputs, targets)
+
+    def __call__(
+        self, outputs: torch.Tensor, labels: torch.Tensor, targets: torch.Tensor | None
+    ) -> torch.Tensor:
+        if labels.device != outputs.device:
+            labels = labels.to(outputs.device, non_blocking=True)
+        if not self._checked:
+            self.check(outputs, labels)
+            self._checked = True
+        if targets is None:
+            return self.label_term(outputs, labels)
+        if targets.device != outputs.device:
+            targets = targets.to(outputs.device, non_blocking=True)
+        if targets.shape != outputs.shape:
+            raise ValueError(
+                f"the model returned outputs of shape {tuple(outputs.shape)} but the teacher's "
+                f"targets have shape {tuple(targets.shape)}: every generation must have the same "
+                "output width"
+            )
+        weight = self.label_weight
+        loss = self.teacher_term(outputs, targets)
+        if weight != 0.0:
+            loss = (1.0 - weight) * loss + weight * self.label_term(outputs, labels)
+        return loss

@@ -1,0 +1,147 @@
+"""When to stop adding generations, and which one to keep.
+
+:class:`StopRule` reads the records of the finished generations and returns a :class:`Decision`.
+Its checks, in order, on the newest generation:
+
+``diverged``
+    its loss or outputs were not finite. It is never the best nor the teacher of another.
+``collapse``
+    degenerate predictions: one class predicted for nearly every training sample (share at least
+    ``collapse_share``, and more than the most common label's own share), or, for ``l2``, the mean
+    output norm shrunk below ``collapse_norm`` times generation 0's. This is the end point of
+    repeated self-distillation in the kernel regime, where every round multiplies each
+    eigencomponent of the predictions by ``d_i / (d_i + c) < 1`` (Mobahi, Farajtabar & Bartlett,
+    NeurIPS 2020).
+``no-gain``
+    over-regularisation: for ``patience`` generations nothing beat the best held-out metric by more
+    than ``min_gain``.
+``max-generations``
+    ``max_generations`` generations after generation 0 are done.
+
+The best generation is the held-out argmax over generations that did not diverge; ties go to the
+earlier, cheaper one.
+
+>>> rule = StopRule(max_generations=8, patience=2)
+>>> records = [{"generation": g, "heldout": h} for g, h in enumerate([0.80, 0.85, 0.84, 0.83])]
+>>> d = rule.decide(records)
+>>> d.stop, d.reason, d.best
+(True, 'no-gain', 1)
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+STOP_REASONS = ("no-gain", "collapse", "diverged", "max-generations")
+
+
+@dataclass(frozen=True)
+class Decision:
+    """The outcome after the newest generation: go on, or stop (with why), and the best so far."""
+
+    stop: bool
+    reason: str | None
+    best: int | None
+    detail: dict[str, Any] = field(default_factory=dict)
+
+
+def _finite(value: Any) -> bool:
+    return isinstance(value, (int, float)) and math.isfinite(value)
+
+
+class StopRule:
+    """Patience, ``min_gain``, ``max_generations``, collapse and divergence over held-out records."""
+
+    def __init__(
+        self,
+        max_generations: int = 8,
+        patience: int = 2,
+        min_gain: float = 0.0,
+        collapse_share: float = 0.95,
+        collapse_norm: float = 0.05,
+    ) -> None:
+        problems = []
+        if not isinstance(max_generations, int) or max_generations < 0:
+            problems.append(
+                f"max_generations should be an integer >= 0, but got {max_generations!r}"
+            )
+        if not isinstance(patience, int) or patience < 1:
+            problems.append(f"patience should be an integer >= 1, but got patience={patience!r}")
+        if not _finite(min_gain) or min_gain < 0:
+            problems.append(f"min_gain should be a finite number >= 0, but got {min_gain!r}")
+        if not _finite(collapse_share) or not 0 < collapse_share <= 1:
+            problems.append(f"collapse_share should lie in (0, 1], but got {collapse_share!r}")
+        if not _finite(collapse_norm) or collapse_norm < 0:
+            problems.append(f"collapse_norm should be >= 0, but got {collapse_norm!r}")
+        if problems:
+            raise ValueError("; ".join(problems))
+        self.max_generations = max_generations
+        self.patience = patience
+        self.min_gain = float(min_gain)
+        self.collapse_share = float(collapse_share)
+        self.collapse_norm = float(collapse_norm)
+
+    @staticmethod
+    def best(records: Sequence[dict[str, Any]]) -> int | None:
+        """Held-out argmax over generations that did not diverge; ties to the earlier one."""
+        best, best_value = None, -math.inf
+        for record in records:
+            value = record.get("heldout")
+            if record.get("diverged") or not _finite(value):
+                continue
+            if value > best_value:
+                best, best_value = record["generation"], value
+        return best
+
+    def collapsed(self, record: dict[str, Any], first: dict[str, Any]) -> str | None:
+        """Why ``record`` looks degenerate, or None."""
+        share = record.get("prediction_share")
+        label_share = record.get("label_share")
+        if _finite(share) and share >= self.collapse_share and (
+            not _finite(label_share) or share > label_share
+        ):
+            return f"{share:.1%} of training predictions fall in one class"
+        norm, norm0 = record.get("output_norm"), first.get("output_norm")
+        if (
+            record["generation"] > 0
+            and _finite(norm)
+            and _finite(norm0)
+            and norm0 > 0
+            and norm < self.collapse_norm * norm0
+        ):
+            return f"mean output norm {norm:.3g} shrank below {self.collapse_norm} x generation 0's"
+        return None
+
+    def decide(self, records: Sequence[dict[str, Any]]) -> Decision:
+        """The decision after the last of ``records`` (one per finished generation, in order)."""
+        if not records:
+            raise ValueError("decide() needs the record of at least one finished generation")
+        newest = records[-1]
+        generation = int(newest["generation"])
+        best = self.best(records)
+        if newest.get("diverged"):
+            return Decision(True, "diverged", best, {"generation": generation})
+        why = self.collapsed(newest, records[0])
+        if why is not None:
+            return Decision(True, "collapse", best, {"generation": generation, "why": why})
+        running, last_gain = -math.inf, None
+        for record in records:
+            value = record.get("heldout")
+            if record.get("diverged") or not _finite(value):
+                continue
+            if last_gain is None or value > running + self.min_gain:
+                last_gain = record["generation"]
+            running = max(running, value)
+        if last_gain is not None and generation - last_gain >= self.patience:
+            return Decision(
+                True,
+                "no-gain",
+                best,
+                {"last_gain": last_gain, "patience": self.patience, "min_gain": self.min_gain},
+            )
+        if generation >= self.max_generations:
+            return Decision(True, "max-generations", best, {"max_generations": self.max_generations})
+        return Decision(False, None, best)
