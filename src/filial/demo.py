@@ -32,9 +32,7 @@ def _load_digits() -> tuple[np.ndarray, np.ndarray]:
     try:
         from sklearn.datasets import load_digits
     except ImportError as exc:  # pragma: no cover - depends on the environment
-        raise ImportError(
-            "the digits demo needs scikit-learn: pip install 'filial[demo]'"
-        ) from exc
+        raise ImportError("the digits demo needs scikit-learn: pip install 'filial[demo]'") from exc
     digits = load_digits()
     return digits.data.astype(np.float32) / 16.0, digits.target.astype(np.int64)
 

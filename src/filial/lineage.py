@@ -44,7 +44,7 @@ HELDOUT_LABELS_FILE = "heldout_labels.npy"
 
 @dataclass
 class Result:
-    """What a lineage found: one record per finished generation, the best one, and why it stopped."""
+    """What a lineage found: a record per finished generation, the best one, why it stopped."""
 
     records: list[dict[str, Any]]
     best: int | None
@@ -280,9 +280,7 @@ class Lineage:
         self._records = list(state["records"])
         self._decision = state.get("decision")
         if self._records:
-            log.info(
-                "resuming %s after generation %d", run_dir, self._records[-1]["generation"]
-            )
+            log.info("resuming %s after generation %d", run_dir, self._records[-1]["generation"])
 
     def _read_state(self) -> dict[str, Any]:
         import json
@@ -326,7 +324,9 @@ class Lineage:
     def run(self, fit: Callable[[Generation], nn.Module | None]) -> Result:
         """Managed mode: ``fit(gen)`` trains ``gen.model`` (and may return the trained module)."""
         if not callable(fit):
-            raise TypeError(f"run() needs a fit function such as filial.fit_epochs(...), got {fit!r}")
+            raise TypeError(
+                f"run() needs a fit function such as filial.fit_epochs(...), got {fit!r}"
+            )
         for gen in self:
             model = fit(gen)
             gen.finish(model if model is not None else gen.model)
@@ -350,7 +350,9 @@ class Lineage:
         _seed_everything(derive_seed(self.settings["seed"], index))
         model = self.model_fn()
         if not isinstance(model, nn.Module):
-            raise TypeError(f"model_fn must return an nn.Module, but returned {type(model).__name__}")
+            raise TypeError(
+                f"model_fn must return an nn.Module, but returned {type(model).__name__}"
+            )
         previous = self._previous_model() if self._previous_model is not None else None
         if previous is not None:
             if previous is model:
@@ -368,7 +370,7 @@ class Lineage:
         return Generation(index, model, self._setup, teacher, store, self._record)
 
     def _teacher_store(self, record: dict[str, Any]) -> TargetStore:
-        """The targets of the teacher ``record``, verified; rebuilt from its checkpoint if damaged."""
+        """The teacher ``record``'s targets, verified; rebuilt from its checkpoint if damaged."""
         directory = self.run_dir / f"gen{record['generation']}"
         fresh = self._fresh_store
         if fresh is not None and fresh.directory == directory:

@@ -50,7 +50,7 @@ def _is_integer(labels: torch.Tensor) -> bool:
 
 
 class StudentLoss:
-    """``loss(outputs, labels, targets)`` for one lineage's settings; ``targets`` None = labels only.
+    """``loss(outputs, labels, targets)`` for one lineage's settings (``targets`` None: labels).
 
     The first call checks the labels once (their type and range against the output width), so
     a mistake is named in words instead of surfacing as an index error deep in a kernel.
@@ -59,11 +59,13 @@ class StudentLoss:
     def __init__(self, kind: str, temperature: float = 1.0, label_weight: float = 0.0) -> None:
         if kind not in LOSS_KINDS:
             raise ValueError(f"targets must be one of {LOSS_KINDS}, but got targets={kind!r}")
-        if not isinstance(temperature, (int, float)) or not math.isfinite(temperature) or (
-            temperature <= 0
+        if (
+            not isinstance(temperature, (int, float))
+            or not math.isfinite(temperature)
+            or (temperature <= 0)
         ):
             raise ValueError(
-                f"temperature should be a positive finite number, but got temperature={temperature!r}"
+                f"temperature should be a positive finite number, but got {temperature=!r}"
             )
         if not isinstance(label_weight, (int, float)) or not math.isfinite(label_weight):
             raise ValueError(

@@ -53,7 +53,7 @@ def _finite(value: Any) -> bool:
 
 
 class StopRule:
-    """Patience, ``min_gain``, ``max_generations``, collapse and divergence over held-out records."""
+    """Patience, ``min_gain``, ``max_generations``, collapse and divergence over records."""
 
     def __init__(
         self,
@@ -100,8 +100,10 @@ class StopRule:
         """Why ``record`` looks degenerate, or None."""
         share = record.get("prediction_share")
         label_share = record.get("label_share")
-        if _finite(share) and share >= self.collapse_share and (
-            not _finite(label_share) or share > label_share
+        if (
+            _finite(share)
+            and share >= self.collapse_share
+            and (not _finite(label_share) or share > label_share)
         ):
             return f"{share:.1%} of training predictions fall in one class"
         norm, norm0 = record.get("output_norm"), first.get("output_norm")
@@ -143,5 +145,7 @@ class StopRule:
                 {"last_gain": last_gain, "patience": self.patience, "min_gain": self.min_gain},
             )
         if generation >= self.max_generations:
-            return Decision(True, "max-generations", best, {"max_generations": self.max_generations})
+            return Decision(
+                True, "max-generations", best, {"max_generations": self.max_generations}
+            )
         return Decision(False, None, best)
