@@ -347,7 +347,7 @@ class Lineage:
     def _begin(self, index: int) -> Generation:
         teacher = self._records[-1]["generation"] if self._records else None
         store = self._teacher_store(self._records[-1]) if self._records else None
-        _seed_everything(derive_seed(self.settings["seed"], index))
+        self._seed_generation(index)
         model = self.model_fn()
         if not isinstance(model, nn.Module):
             raise TypeError(
@@ -368,6 +368,21 @@ class Lineage:
                 )
         self._previous_model = weakref.ref(model)
         return Generation(index, model, self._setup, teacher, store, self._record)
+
+    def _seed_generation(self, index: int) -> None:
+        """Seed every random stream the generation draws from, from ``(seed, index)``.
+
+        Besides torch's, Python's and numpy's global generators this reseeds the generators that
+        the user's training loader and its sampler hold, so that generation ``index`` sees the
+        same shuffling whether the run went straight through or was resumed in a new process.
+        """
+        seed = self.settings["seed"]
+        _seed_everything(derive_seed(seed, index))
+        loader = self._setup.train_loader
+        held = {id(g): g for g in (loader.generator, getattr(loader.sampler, "generator", None))}
+        for generator in held.values():
+            if isinstance(generator, torch.Generator):
+                generator.manual_seed(derive_seed(seed, index, 2))
 
     def _teacher_store(self, record: dict[str, Any]) -> TargetStore:
         """The teacher ``record``'s targets, verified; rebuilt from its checkpoint if damaged."""

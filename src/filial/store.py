@@ -180,7 +180,7 @@ class TargetStore:
 
     def read_all(self) -> np.ndarray:
         """The whole store as an in-memory float32 array of shape (N, views, C)."""
-        return np.asarray(self.array, dtype=np.float32)
+        return np.array(self.array, dtype=np.float32)  # a copy, never a view of the file
 
     def __getstate__(self) -> dict[str, Any]:
         # Worker processes (spawn on macOS) get the path, never an open memory map.

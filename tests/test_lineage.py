@@ -1,0 +1,256 @@
+"""The generation loop: hook and managed mode, seeding, records, resume, refusals, divergence."""
+
+from __future__ import annotations
+
+import json
+import logging
+
+import pytest
+import torch
+from conftest import TinyNet, blobs
+from torch import nn
+from torch.utils.data import DataLoader
+
+import filial
+from filial.checkpoint import load_checkpoint
+
+
+def _hook(lineage, epochs=2, lr=0.1, stop_after=None, poison=None):
+    """The user's own loop, as in the README; ``poison`` fills that generation's weights with NaN."""
+    for gen in lineage:
+        model = gen.model
+        opt = torch.optim.SGD(model.parameters(), lr=lr)
+        for _ in range(epochs):
+            for inputs, labels, targets in gen.loader:
+                loss = gen.loss(model(inputs), labels, targets)
+                opt.zero_grad()
+                loss.backward()
+                opt.step()
+        if gen.index == poison:
+            with torch.no_grad():
+                for p in model.parameters():
+                    p.fill_(float("nan"))
+        gen.finish(model)
+        if gen.index == stop_after:
+            break
+    return lineage.result
+
+
+def _stable(records):
+    """Records without wall-clock fields, for comparing two runs."""
+    return [{k: v for k, v in r.items() if k not in ("seconds", "epochs")} for r in records]
+
+
+def _lineage(loaders, run_dir, **kwargs):
+    train, heldout, test = loaders
+    options = {"max_generations": 3, "patience": 5, "test_loader": test}
+    options.update(kwargs)
+    return filial.Lineage(TinyNet(), train, heldout, run_dir=run_dir, **options)
+
+
+def test_records_have_every_field(loaders, tmp_path):
+    result = _hook(_lineage(loaders, tmp_path / "run"))
+    assert [r["generation"] for r in result.records] == [0, 1, 2, 3]
+    assert result.stop_reason == "max-generations"
+    first, second = result.records[0], result.records[1]
+    for key in ("heldout", "test", "train", "ensemble", "target_entropy", "seconds"):
+        assert isinstance(first[key], float), key
+    assert first["agreement"] is None and first["teacher"] is None
+    assert second["teacher"] == 0 and 0.0 <= second["agreement"] <= 1.0
+    assert first["ensemble"] == first["heldout"]  # an ensemble of one is that generation
+    assert (tmp_path / "run" / first["checkpoint"]).is_file()
+    assert "stop" in result.records[-1] and "stop" not in first
+    assert result.best == max(range(4), key=lambda g: (result.records[g]["heldout"], -g))
+    # lineage.json is strict JSON (no NaN) and holds the same records.
+    state = json.loads(
+        (tmp_path / "run" / "lineage.json").read_text(), parse_constant=pytest.fail
+    )
+    assert state["records"] == result.records
+    assert state["decision"]["reason"] == "max-generations"
+
+
+def test_l2_records_output_norm(loaders, tmp_path):
+    result = _hook(_lineage(loaders, tmp_path / "run", targets="l2", max_generations=1))
+    assert all("output_norm" in r and "target_entropy" not in r for r in result.records)
+
+
+def test_hook_and_managed_mode_share_one_engine(loaders, tmp_path):
+    hook = _hook(_lineage(loaders, tmp_path / "hook"), epochs=2, lr=0.1)
+    fit = filial.fit_epochs(2, lambda params: torch.optim.SGD(params, lr=0.1))
+    managed = _lineage(loaders, tmp_path / "managed").run(fit)
+    assert _stable(hook.records) == _stable(managed.records)
+    assert [len(r["epochs"]) for r in managed.records] == [2, 2, 2, 2]
+
+
+def test_generations_get_different_inits_and_runs_repeat(loaders, tmp_path):
+    inits = []
+
+    def model_fn():
+        model = TinyNet()()
+        inits.append(model[0].weight.detach().clone())
+        return model
+
+    train, heldout, _ = loaders
+    for name in ("a", "b"):
+        train.generator.manual_seed(0)
+        lineage = filial.Lineage(model_fn, train, heldout, run_dir=tmp_path / name,
+                                 max_generations=2, patience=5)
+        _hook(lineage)
+    a, b = inits[:3], inits[3:]
+    assert not torch.equal(a[0], a[1]) and not torch.equal(a[1], a[2])
+    assert all(torch.equal(x, y) for x, y in zip(a, b, strict=True))
+    for g in range(3):
+        left = load_checkpoint(tmp_path / "a" / f"gen{g}" / "student.pt")
+        right = load_checkpoint(tmp_path / "b" / f"gen{g}" / "student.pt")
+        assert all(torch.equal(left[k], right[k]) for k in left)
+
+
+def test_resume_continues_without_retraining(loaders, tmp_path):
+    train = loaders[0]
+    whole = _hook(_lineage(loaders, tmp_path / "whole"))
+    train.generator.manual_seed(0)
+    run = tmp_path / "run"
+    _hook(_lineage(loaders, run), stop_after=1)
+    before = {g: (run / f"gen{g}" / "student.pt").read_bytes() for g in (0, 1)}
+    stamps = {g: (run / f"gen{g}" / "student.pt").stat().st_mtime_ns for g in (0, 1)}
+
+    started = []
+    resumed = _lineage(loaders, run)
+    assert [r["generation"] for r in resumed.result.records] == [0, 1]
+    for gen in resumed:
+        started.append(gen.index)
+        break
+    assert started == [2]  # no finished generation is trained again
+
+    train.generator.manual_seed(0)  # the user's loader as it would be in a fresh process
+    result = _hook(_lineage(loaders, run))
+    assert [r["generation"] for r in result.records] == [0, 1, 2, 3]
+    for g in (0, 1):
+        assert (run / f"gen{g}" / "student.pt").read_bytes() == before[g]
+        assert (run / f"gen{g}" / "student.pt").stat().st_mtime_ns == stamps[g]
+    # Each generation reseeds everything from (seed, generation), so a resumed run equals one
+    # that was never interrupted.
+    assert _stable(result.records) == _stable(whole.records)
+
+
+def test_finished_run_yields_no_more_generations(loaders, tmp_path):
+    first = _hook(_lineage(loaders, tmp_path / "run", max_generations=1))
+    again = _lineage(loaders, tmp_path / "run", max_generations=1)
+    assert list(again) == []
+    assert again.result.records == first.records and again.result.stop_reason == "max-generations"
+
+
+def test_other_settings_are_refused_by_name(loaders, tmp_path):
+    run = tmp_path / "run"
+    _hook(_lineage(loaders, run, max_generations=1))
+    before = sorted((p.name, p.stat().st_mtime_ns) for p in run.rglob("*"))
+    with pytest.raises(ValueError) as info:
+        _lineage(loaders, run, max_generations=1, temperature=4.0, targets="l2")
+    message = str(info.value)
+    assert "temperature: 1.0 in the run, 4.0 now" in message and "targets" in message
+    assert "max_generations" not in message
+    other_data = (DataLoader(blobs(80, seed=9), batch_size=16), loaders[1], loaders[2])
+    with pytest.raises(ValueError, match="train_fingerprint"):
+        _lineage(other_data, run, max_generations=1)
+    assert sorted((p.name, p.stat().st_mtime_ns) for p in run.rglob("*")) == before
+
+
+def test_fresh_starts_over_and_foreign_folders_are_refused(loaders, tmp_path):
+    run = tmp_path / "run"
+    _hook(_lineage(loaders, run, max_generations=1))
+    lineage = _lineage(loaders, run, max_generations=2, fresh=True)
+    assert lineage.result.records == [] and not (run / "gen0").exists()
+    foreign = tmp_path / "photos"
+    foreign.mkdir()
+    (foreign / "cat.jpg").write_bytes(b"meow")
+    with pytest.raises(ValueError, match="not a filial run directory"):
+        _lineage(loaders, foreign, fresh=True)
+    assert [p.name for p in foreign.iterdir()] == ["cat.jpg"]
+
+
+def test_unfinished_generation_is_an_error(loaders, tmp_path):
+    lineage = _lineage(loaders, tmp_path / "run")
+    with pytest.raises(RuntimeError, match=r"call gen.finish\(model\)"):
+        for _gen in lineage:
+            pass
+
+
+def test_diverged_generation_is_recorded_and_stops(loaders, tmp_path):
+    run = tmp_path / "run"
+    result = _hook(_lineage(loaders, run), poison=1)
+    assert [r["generation"] for r in result.records] == [0, 1]
+    assert result.records[1]["diverged"] and result.records[1]["heldout"] is None
+    assert result.stop_reason == "diverged" and result.best == 0
+    assert not (run / "gen1" / "targets.json").exists()  # never a teacher
+    best = result.best_model()
+    expected = load_checkpoint(run / "gen0" / "student.pt")
+    assert all(torch.equal(best.state_dict()[k], expected[k]) for k in expected)
+
+
+def test_damaged_targets_are_recomputed_from_the_checkpoint(loaders, tmp_path, caplog):
+    run = tmp_path / "run"
+    _hook(_lineage(loaders, run, store_dtype="float32"), stop_after=0)
+    original = filial.TargetStore(run / "gen0").read_all()
+    path = run / "gen0" / "targets.npy"
+    data = bytearray(path.read_bytes())
+    data[-1] ^= 0xFF
+    path.write_bytes(bytes(data))
+    lineage = _lineage(loaders, run, store_dtype="float32")
+    with caplog.at_level(logging.WARNING, logger="filial"):
+        gen = next(iter(lineage))
+    assert "recomputing generation 0's targets" in caplog.text
+    assert torch.equal(torch.from_numpy(gen.store.read_all()), torch.from_numpy(original))
+
+
+def test_model_fn_must_build_a_new_module(loaders, tmp_path):
+    shared = TinyNet()()
+    train, heldout, _ = loaders
+    lineage = filial.Lineage(lambda: shared, train, heldout, run_dir=tmp_path / "run")
+    with pytest.raises(ValueError, match="same module object"):
+        _hook(lineage)
+
+    base = TinyNet()()
+
+    def sharing():
+        return nn.Sequential(base[0], nn.ReLU(), nn.Linear(16, 3))
+
+    lineage = filial.Lineage(sharing, train, heldout, run_dir=tmp_path / "run2")
+    with pytest.raises(ValueError, match="sharing 2 parameter tensors"):
+        _hook(lineage)
+
+
+def test_labels_outside_the_output_range_are_named(tmp_path):
+    data = blobs(40, classes=5)
+    train = DataLoader(data, batch_size=8)
+    heldout = DataLoader(blobs(20, classes=5, seed=4), batch_size=8)
+    lineage = filial.Lineage(TinyNet(classes=3), train, heldout, run_dir=tmp_path / "run")
+    with pytest.raises(ValueError, match=r"labels range over \[0, 4\] but the model has 3 outputs"):
+        _hook(lineage)
+
+
+def test_bad_arguments_are_reported_together_and_write_nothing(loaders, tmp_path):
+    train, heldout, _ = loaders
+    with pytest.raises(ValueError) as info:
+        filial.Lineage(TinyNet(), train, heldout, run_dir=tmp_path / "run", targets="kl",
+                       patience=0, label_weight=float("nan"), store_dtype="int8")
+    message = str(info.value)
+    for word in ("targets", "patience", "store_dtype"):
+        assert word in message
+    assert not (tmp_path / "run").exists()
+    # label_weight is not clamped: a teacher weight above one is allowed (Das & Sanghavi 2023).
+    filial.Lineage(TinyNet(), train, heldout, run_dir=tmp_path / "ok", label_weight=-0.5)
+    with pytest.raises(ValueError, match="label_weight"):
+        filial.Lineage(TinyNet(), train, heldout, run_dir=tmp_path / "x", label_weight=float("inf"))
+
+
+def test_label_weight_mixes_labels_into_student_loss(loaders, tmp_path):
+    lineage = _lineage(loaders, tmp_path / "run", label_weight=0.25, max_generations=1)
+    gens = iter(lineage)
+    gen0 = next(gens)
+    gen0.finish(gen0.model)
+    gen1 = next(gens)
+    inputs, labels, targets = next(iter(gen1.loader))
+    outputs = gen1.model(inputs)
+    expected = 0.75 * filial.losses.soft_cross_entropy(outputs, targets, 1.0)
+    expected = expected + 0.25 * nn.functional.cross_entropy(outputs, labels)
+    assert torch.allclose(gen1.loss(outputs, labels, targets), expected)
