@@ -16,7 +16,7 @@ from filial.checkpoint import load_checkpoint
 
 
 def _hook(lineage, epochs=2, lr=0.1, stop_after=None, poison=None):
-    """The user's own loop, as in the README; ``poison`` fills that generation's weights with NaN."""
+    """The user's own loop, as in the README; ``poison``: that generation's weights become NaN."""
     for gen in lineage:
         model = gen.model
         opt = torch.optim.SGD(model.parameters(), lr=lr)
@@ -62,9 +62,7 @@ def test_records_have_every_field(loaders, tmp_path):
     assert "stop" in result.records[-1] and "stop" not in first
     assert result.best == max(range(4), key=lambda g: (result.records[g]["heldout"], -g))
     # lineage.json is strict JSON (no NaN) and holds the same records.
-    state = json.loads(
-        (tmp_path / "run" / "lineage.json").read_text(), parse_constant=pytest.fail
-    )
+    state = json.loads((tmp_path / "run" / "lineage.json").read_text(), parse_constant=pytest.fail)
     assert state["records"] == result.records
     assert state["decision"]["reason"] == "max-generations"
 
@@ -93,8 +91,9 @@ def test_generations_get_different_inits_and_runs_repeat(loaders, tmp_path):
     train, heldout, _ = loaders
     for name in ("a", "b"):
         train.generator.manual_seed(0)
-        lineage = filial.Lineage(model_fn, train, heldout, run_dir=tmp_path / name,
-                                 max_generations=2, patience=5)
+        lineage = filial.Lineage(
+            model_fn, train, heldout, run_dir=tmp_path / name, max_generations=2, patience=5
+        )
         _hook(lineage)
     a, b = inits[:3], inits[3:]
     assert not torch.equal(a[0], a[1]) and not torch.equal(a[1], a[2])
@@ -231,8 +230,16 @@ def test_labels_outside_the_output_range_are_named(tmp_path):
 def test_bad_arguments_are_reported_together_and_write_nothing(loaders, tmp_path):
     train, heldout, _ = loaders
     with pytest.raises(ValueError) as info:
-        filial.Lineage(TinyNet(), train, heldout, run_dir=tmp_path / "run", targets="kl",
-                       patience=0, label_weight=float("nan"), store_dtype="int8")
+        filial.Lineage(
+            TinyNet(),
+            train,
+            heldout,
+            run_dir=tmp_path / "run",
+            targets="kl",
+            patience=0,
+            label_weight=float("nan"),
+            store_dtype="int8",
+        )
     message = str(info.value)
     for word in ("targets", "patience", "store_dtype"):
         assert word in message

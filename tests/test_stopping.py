@@ -1,4 +1,4 @@
-"""StopRule: patience, min_gain, max_generations, collapse and divergence; best = held-out argmax."""
+"""StopRule: patience, min_gain, max_generations, collapse, divergence; best = held-out argmax."""
 
 from __future__ import annotations
 

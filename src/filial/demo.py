@@ -45,7 +45,7 @@ def symmetric_noise(
     Returns the noisy labels and the mask of flipped ones.
 
     >>> noisy, flipped = symmetric_noise(np.zeros(1000, dtype=np.int64), 0.3, 10, seed=0)
-    >>> bool((noisy[flipped] != 0).all()), 0.25 < flipped.mean() < 0.35
+    >>> bool((noisy[flipped] != 0).all()), bool(0.25 < flipped.mean() < 0.35)
     (True, True)
     """
     if not 0.0 <= rate < 1.0:

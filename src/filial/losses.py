@@ -17,12 +17,13 @@ one) has been reported to help under heavy label noise (Das & Sanghavi, ICML 202
 >>> import torch
 >>> z = torch.tensor([[2.0, 0.0]]); v = torch.tensor([[2.0, 0.0]])
 >>> round(float(soft_cross_entropy(z, v, temperature=1.0)), 4)  # = entropy of softmax(v)
-0.1269
+0.3653
 """
 
 from __future__ import annotations
 
 import math
+import numbers
 
 import torch
 import torch.nn.functional as F
@@ -60,14 +61,19 @@ class StudentLoss:
         if kind not in LOSS_KINDS:
             raise ValueError(f"targets must be one of {LOSS_KINDS}, but got targets={kind!r}")
         if (
-            not isinstance(temperature, (int, float))
+            not isinstance(temperature, numbers.Real)
+            or isinstance(temperature, bool)
             or not math.isfinite(temperature)
-            or (temperature <= 0)
+            or temperature <= 0
         ):
             raise ValueError(
                 f"temperature should be a positive finite number, but got {temperature=!r}"
             )
-        if not isinstance(label_weight, (int, float)) or not math.isfinite(label_weight):
+        if (
+            not isinstance(label_weight, numbers.Real)
+            or isinstance(label_weight, bool)
+            or not math.isfinite(label_weight)
+        ):
             raise ValueError(
                 f"label_weight should be a finite number, but got label_weight={label_weight!r}"
             )
