@@ -17,9 +17,11 @@ All of them pickle (no lambdas, no open files) so DataLoader workers started wit
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import inspect
-from collections.abc import Sequence
+import random
+from collections.abc import Iterator, Sequence
 from typing import Any
 
 import numpy as np
@@ -101,17 +103,32 @@ class IndexedDataset(Dataset):
     """The user's map-style dataset, fetching whole batches together with their indices."""
 
     def __init__(self, dataset: Dataset) -> None:
-        self.dataset = dataset
+        object.__setattr__(self, "_filial_wrapped", dataset)
+
+    # Note: transparent attributes. A worker_init_fn configures its worker's copy through
+    # get_worker_info().dataset, which is this wrapper: reads and writes of any other name go
+    # to the user's dataset (which may itself have a ``dataset`` attribute, e.g. a Subset).
+    def __getattr__(self, name: str) -> Any:
+        if name == "_filial_wrapped":  # not set yet (while unpickling): no recursion
+            raise AttributeError(name)
+        return getattr(self._filial_wrapped, name)
+
+    def __setattr__(self, name: str, value: Any) -> None:
+        setattr(self._filial_wrapped, name, value)
+
+    def __delattr__(self, name: str) -> None:
+        delattr(self._filial_wrapped, name)
 
     def __len__(self) -> int:
-        return len(self.dataset)  # type: ignore[arg-type]
+        return len(self._filial_wrapped)  # type: ignore[arg-type]
 
     def __getitem__(self, index: int) -> Any:
-        return self.dataset[index]
+        return self._filial_wrapped[index]
 
     def __getitems__(self, indices: Sequence[int]) -> _Fetched:
-        inner = getattr(self.dataset, "__getitems__", None)
-        samples = inner(indices) if inner else [self.dataset[i] for i in indices]
+        dataset = self._filial_wrapped
+        inner = getattr(dataset, "__getitems__", None)
+        samples = inner(indices) if inner else [dataset[i] for i in indices]
         return _Fetched(indices, samples)
 
 
@@ -204,6 +221,18 @@ def sequential_loader(loader: DataLoader, seed: int) -> DataLoader:
     )
 
 
+@contextlib.contextmanager
+def preserved_rng() -> Iterator[None]:
+    """Run a block without moving torch's (CPU), Python's or numpy's global generators."""
+    py_state, np_state = random.getstate(), np.random.get_state()
+    try:
+        with torch.random.fork_rng(devices=[]):
+            yield
+    finally:
+        random.setstate(py_state)
+        np.random.set_state(np_state)
+
+
 def fingerprint(loader: DataLoader, probes: int = 64) -> str:
     """A cheap fingerprint of a loader's dataset: its length and the labels of spread-out samples.
 
@@ -211,18 +240,11 @@ def fingerprint(loader: DataLoader, probes: int = 64) -> str:
     state restored afterwards), so a dataset with random augmentation does not disturb the
     caller's random streams.
     """
-    import random
-
     dataset = loader.dataset
     size = len(dataset)
     indices = sorted({int(i) for i in np.linspace(0, size - 1, num=min(probes, size))})
-    py_state, np_state = random.getstate(), np.random.get_state()
-    try:
-        with torch.random.fork_rng(devices=[]):
-            samples = [dataset[i] for i in indices]
-    finally:
-        random.setstate(py_state)
-        np.random.set_state(np_state)
+    with preserved_rng():
+        samples = [dataset[i] for i in indices]
     _, labels = split_pair(loader.collate_fn(samples))
     digest = hashlib.sha256(f"n={size};idx={indices[:3]}..{indices[-1]}".encode())
     if isinstance(labels, torch.Tensor):

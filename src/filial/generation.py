@@ -25,7 +25,7 @@ from torch.utils.data import DataLoader
 
 from ._io import atomic_write
 from .checkpoint import save_checkpoint, unwrap
-from .data import derive_seed, sequential_loader, training_loader
+from .data import derive_seed, preserved_rng, sequential_loader, training_loader
 from .losses import StudentLoss
 from .metrics import Metric, default_metric
 from .store import TargetStore
@@ -89,7 +89,9 @@ def predict(model: nn.Module, loader: DataLoader, seed: int) -> Predictions:
     was_training = module.training
     module.eval()
     try:
-        with torch.inference_mode():
+        # A dataset with random augmentation draws from the global generators in this process
+        # when the loader has no workers; the evaluation must not move the user's streams.
+        with preserved_rng(), torch.inference_mode():
             for indices, inputs, batch_labels in sequential_loader(loader, seed):
                 out = module(move_to(inputs, device))
                 if not isinstance(out, torch.Tensor) or out.ndim != 2:

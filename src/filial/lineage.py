@@ -379,7 +379,14 @@ class Lineage:
         seed = self.settings["seed"]
         _seed_everything(derive_seed(seed, index))
         loader = self._setup.train_loader
-        held = {id(g): g for g in (loader.generator, getattr(loader.sampler, "generator", None))}
+        batch_sampler = loader.batch_sampler
+        candidates = (
+            loader.generator,
+            getattr(loader.sampler, "generator", None),
+            getattr(batch_sampler, "generator", None),
+            getattr(getattr(batch_sampler, "sampler", None), "generator", None),
+        )
+        held = {id(g): g for g in candidates}
         for generator in held.values():
             if isinstance(generator, torch.Generator):
                 generator.manual_seed(derive_seed(seed, index, 2))
