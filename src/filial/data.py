@@ -136,7 +136,8 @@ class IndexedCollate:
     """Collate with the user's function, then attach targets from a store, or the indices.
 
     Yields ``(inputs, labels, targets)`` when built with a store (``targets`` None without one),
-    or ``(indices, inputs, labels)`` with ``keep_indices=True`` (for the teacher pass).
+    or ``(indices, inputs, labels)`` with ``keep_indices=True`` (for the teacher pass; the
+    indices as a list of ints, since building a tensor of them costs more than reading them).
     """
 
     def __init__(
@@ -154,7 +155,7 @@ class IndexedCollate:
             )
         inputs, labels = split_pair(self.collate_fn(fetched.samples))
         if self.keep_indices:
-            return torch.as_tensor(fetched.indices, dtype=torch.int64), inputs, labels
+            return list(fetched.indices), inputs, labels
         if self.store is None:
             return inputs, labels, None
         rows = self.store.gather(np.asarray(fetched.indices, dtype=np.int64))

@@ -79,13 +79,17 @@ def model_device(model: nn.Module) -> torch.device:
 
 
 def predict(model: nn.Module, loader: DataLoader, seed: int) -> Predictions:
-    """Outputs of ``model`` (in eval mode, restored afterwards) over ``loader``'s whole dataset."""
+    """Outputs of ``model`` (in eval mode, restored afterwards) over ``loader``'s whole dataset.
+
+    The batches come in index order, so each one fills the next rows of a buffer kept on the
+    model's device; it is copied to the CPU once, at the end (no synchronisation per batch).
+    """
     module = unwrap(model)
     device = model_device(module)
     size = len(loader.dataset)  # type: ignore[arg-type]
     outputs: torch.Tensor | None = None
     labels: torch.Tensor | None = None
-    seen = torch.zeros(size, dtype=torch.bool)
+    filled = 0
     was_training = module.training
     module.eval()
     try:
@@ -94,31 +98,32 @@ def predict(model: nn.Module, loader: DataLoader, seed: int) -> Predictions:
         with preserved_rng(), torch.inference_mode():
             for indices, inputs, batch_labels in sequential_loader(loader, seed):
                 out = module(move_to(inputs, device))
-                if not isinstance(out, torch.Tensor) or out.ndim != 2:
+                if not isinstance(out, torch.Tensor) or out.ndim != 2 or len(out) != len(indices):
                     shape = tuple(out.shape) if isinstance(out, torch.Tensor) else type(out)
                     raise ValueError(
-                        "the model must return a tensor of shape (batch, outputs), but returned "
-                        f"{shape}"
+                        "the model must return a tensor of shape (batch, outputs) with one row "
+                        f"per sample, but returned {shape} for a batch of {len(indices)}"
                     )
-                out = out.detach().float().cpu()
-                batch_labels = torch.as_tensor(batch_labels).cpu()
-                if outputs is None:
-                    outputs = torch.empty((size, out.shape[1]), dtype=torch.float32)
+                batch_labels = torch.as_tensor(batch_labels)
+                if outputs is None or labels is None:
+                    outputs = torch.empty((size, out.shape[1]), dtype=torch.float32, device=device)
                     labels = torch.empty((size, *batch_labels.shape[1:]), dtype=batch_labels.dtype)
                 elif out.shape[1] != outputs.shape[1]:
                     raise ValueError(
                         f"the model's output width changed within one pass "
                         f"({outputs.shape[1]} then {out.shape[1]})"
                     )
-                outputs[indices] = out
-                labels[indices] = batch_labels
-                seen[indices] = True
+                if int(indices[0]) != filled:
+                    raise RuntimeError(f"evaluation batch starts at {int(indices[0])}, not {filled}")
+                end = filled + len(indices)
+                outputs[filled:end] = out
+                labels[filled:end] = batch_labels
+                filled = end
     finally:
         module.train(was_training)
-    if outputs is None or labels is None or not bool(seen.all()):
-        missing = int((~seen).sum())
-        raise RuntimeError(f"the evaluation pass missed {missing} of {size} samples")
-    return Predictions(outputs, labels)
+    if outputs is None or labels is None or filled != size:
+        raise RuntimeError(f"the evaluation pass covered {filled} of {size} samples")
+    return Predictions(outputs.cpu(), labels)
 
 
 def _entropy(outputs: torch.Tensor, temperature: float) -> float:

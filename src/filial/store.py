@@ -169,13 +169,14 @@ class TargetStore:
                     f"{self.directory / self.ARRAY} has shape {array.shape}, but its manifest "
                     f"records {tuple(self.manifest['shape'])}"
                 )
-            self._array = array
+            # A plain ndarray over the mapping: indexing it skips np.memmap's per-call wrapping.
+            self._array = np.asarray(array)
         return self._array
 
     def gather(self, indices: np.ndarray, views: np.ndarray | None = None) -> np.ndarray:
         """Rows for dataset ``indices`` (and one view each, default view 0) as float32 (B, C)."""
         array = self.array
-        rows = array[indices, 0] if views is None else array[indices, views]
+        rows = array[:, 0].take(indices, axis=0) if views is None else array[indices, views]
         return rows.astype(np.float32, copy=False)
 
     def read_all(self) -> np.ndarray:
