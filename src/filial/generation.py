@@ -114,7 +114,9 @@ def predict(model: nn.Module, loader: DataLoader, seed: int) -> Predictions:
                         f"({outputs.shape[1]} then {out.shape[1]})"
                     )
                 if int(indices[0]) != filled:
-                    raise RuntimeError(f"evaluation batch starts at {int(indices[0])}, not {filled}")
+                    raise RuntimeError(
+                        f"evaluation batch starts at {int(indices[0])}, not {filled}"
+                    )
                 end = filled + len(indices)
                 outputs[filled:end] = out
                 labels[filled:end] = batch_labels
