@@ -261,3 +261,12 @@ def test_label_weight_mixes_labels_into_student_loss(loaders, tmp_path):
     expected = 0.75 * filial.losses.soft_cross_entropy(outputs, targets, 1.0)
     expected = expected + 0.25 * nn.functional.cross_entropy(outputs, labels)
     assert torch.allclose(gen1.loss(outputs, labels, targets), expected)
+
+
+def test_progress_prints_one_line_per_generation(loaders, tmp_path, capsys):
+    _hook(_lineage(loaders, tmp_path / "loud", max_generations=1))
+    lines = capsys.readouterr().err.splitlines()
+    assert [line.split(":")[1].strip() for line in lines] == ["generation 0", "generation 1"]
+    assert "stop (max-generations)" in lines[-1]
+    _hook(_lineage(loaders, tmp_path / "quiet", max_generations=1, progress=False))
+    assert capsys.readouterr().err == ""

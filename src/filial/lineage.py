@@ -15,6 +15,7 @@ import logging
 import math
 import random
 import shutil
+import sys
 import weakref
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass
@@ -25,6 +26,7 @@ import numpy as np
 import torch
 from torch import nn
 from torch.utils.data import DataLoader
+from tqdm.auto import tqdm
 
 from ._io import atomic_write, atomic_write_json, sweep_temporaries
 from .checkpoint import load_checkpoint
@@ -111,7 +113,8 @@ class Lineage:
 
     An existing run directory with the same settings is resumed after its last finished
     generation; different settings are refused. ``fresh=True`` deletes an existing run directory
-    (only one that filial made) and starts over.
+    (only one that filial made) and starts over. ``progress`` prints one line per finished
+    generation on stderr; warnings go through the ``logging`` logger ``"filial"``.
     """
 
     def __init__(
@@ -134,6 +137,7 @@ class Lineage:
         test_loader: DataLoader | None = None,
         seed: int = 0,
         fresh: bool = False,
+        progress: bool = True,
     ) -> None:
         problems: list[Exception] = []
 
@@ -199,6 +203,7 @@ class Lineage:
 
         self.model_fn = model_fn
         self.run_dir = Path(run_dir)
+        self.progress = bool(progress)
         self.rule = rule
         train_print = fingerprint(train_loader)
         self.settings: dict[str, Any] = {
@@ -280,7 +285,12 @@ class Lineage:
         self._records = list(state["records"])
         self._decision = state.get("decision")
         if self._records:
-            log.info("resuming %s after generation %d", run_dir, self._records[-1]["generation"])
+            self._say(f"resuming {run_dir} after generation {self._records[-1]['generation']}")
+
+    def _say(self, line: str) -> None:
+        """One line of progress on stderr (through tqdm, so that open progress bars survive)."""
+        if self.progress:
+            tqdm.write(f"filial: {line}", file=sys.stderr)
 
     def _read_state(self) -> dict[str, Any]:
         import json
@@ -469,13 +479,15 @@ class Lineage:
             "detail": decision.detail,
         }
         self._write_state()
-        log.info(
-            "generation %d: held-out %s, train vs labels %s, ensemble %s%s",
-            gen.index,
-            _fmt(record["heldout"]),
-            _fmt(record["train"]),
-            _fmt(record["ensemble"]),
-            f"; stop ({decision.reason}), best generation {decision.best}" if decision.stop else "",
+        self._say(
+            f"generation {gen.index}: held-out {_fmt(record['heldout'])}, train vs labels "
+            f"{_fmt(record['train'])}, ensemble {_fmt(record['ensemble'])}, "
+            f"{record['seconds']:.1f} s"
+            + (
+                f"; stop ({decision.reason}), best generation {decision.best}"
+                if decision.stop
+                else ""
+            )
         )
         return record
 
