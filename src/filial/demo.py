@@ -18,7 +18,6 @@ import logging
 import sys
 from collections.abc import Sequence
 from dataclasses import dataclass
-from typing import Any
 
 import numpy as np
 import torch
@@ -147,28 +146,32 @@ class CNN:
         )
 
 
-def format_table(records: Sequence[dict[str, Any]], best: int | None) -> str:
-    """One row per generation: held-out, test, train vs labels, ensemble, entropy/norm, seconds."""
-    spread = "target_entropy" if records and "target_entropy" in records[0] else "output_norm"
-    header = f"{'gen':>4} {'held-out':>9} {'test':>7} {'train':>7} {'ensemble':>9} "
-    header += f"{spread.replace('_', ' '):>15} {'agree':>6} {'seconds':>8}"
-    lines = [header]
+def mail_room_loaders(
+    noise: float = 0.3,
+    split_seed: int = 0,
+    batch_size: int = 64,
+    train_size: int = 1000,
+    heldout_size: int = 300,
+    images: bool = False,
+) -> tuple[DataLoader, DataLoader, DataLoader]:
+    """Recipe data factory: the mail room's (train, held-out, test) loaders."""
+    room = mail_room(noise, split_seed, train_size, heldout_size, images)
+    return room.loaders(batch_size=batch_size, seed=split_seed)
 
-    def cell(value: Any, width: int) -> str:
-        return f"{value:>{width}.4f}" if isinstance(value, float) else f"{'-':>{width}}"
 
-    for r in records:
-        mark = " *" if r["generation"] == best else ("  diverged" if r.get("diverged") else "")
-        lines.append(
-            f"{r['generation']:>4} {cell(r['heldout'], 9)} {cell(r['test'], 7)} "
-            f"{cell(r['train'], 7)} {cell(r['ensemble'], 9)} {cell(r.get(spread), 15)} "
-            f"{cell(r['agreement'], 6)} {r['seconds']:>8.2f}{mark}"
-        )
-    return "\n".join(lines)
+def mlp(hidden: Sequence[int] = (256, 256), inputs: int = 64) -> nn.Module:
+    """Recipe model factory: a fresh MLP for flat digits."""
+    return MLP(hidden, inputs)()
+
+
+def cnn(channels: Sequence[int] = (16, 32)) -> nn.Module:
+    """Recipe model factory: a fresh small CNN for 1x8x8 digits (use ``images = true``)."""
+    return CNN(channels)()
 
 
 def main(argv: Sequence[str] | None = None) -> int:
     import filial
+    from filial.report import generation_table
 
     parser = argparse.ArgumentParser(
         prog="python -m filial.demo",
@@ -213,7 +216,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         f"mail room: {len(room.train)} envelopes with {float(room.flipped.float().mean()):.0%} "
         f"wrong labels, {len(room.heldout)} checked (held-out), {len(room.test)} for the report"
     )
-    print(format_table(result.records, result.best))
+    print(generation_table(result.records, result.best))
     print(f"stopped: {result.stop_reason}; best generation {result.best} ({result.checkpoint()})")
     return 0
 

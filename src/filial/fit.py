@@ -68,19 +68,32 @@ class EpochFit:
             disable=disable,
         )
         for epoch in bar:
+            # Sums stay on the device; they are read once per epoch (no sync per step).
             total = torch.zeros((), device=device)
-            batches = 0
+            hits = torch.zeros((), device=device)
+            batches = samples = 0
+            classify = True
             for inputs, labels, targets in gen.loader:
-                loss = gen.loss(model(move_to(inputs, device)), labels, targets)
+                labels = labels.to(device, non_blocking=True)
+                outputs = model(move_to(inputs, device))
+                loss = gen.loss(outputs, labels, targets)
                 optimizer.zero_grad(set_to_none=True)
                 loss.backward()
                 optimizer.step()
                 total += loss.detach()
+                classify = not labels.is_floating_point()
+                if classify:
+                    hits += (outputs.detach().argmax(dim=1) == labels).sum()
+                else:
+                    hits -= (outputs.detach() - labels.view_as(outputs)).pow(2).mean() * len(labels)
                 batches += 1
+                samples += len(labels)
             if scheduler is not None:
                 scheduler.step()
-            mean = float(total) / max(batches, 1)  # one device sync per epoch, not per step
-            gen.log_epoch(epoch, loss=mean)
+            mean = float(total) / max(batches, 1)
+            running = float(hits) / max(samples, 1)
+            name = "running_accuracy" if classify else "running_neg_mse"
+            gen.log_epoch(epoch, loss=mean, **{name: running})
             bar.set_postfix(loss=f"{mean:.4f}", refresh=False)
         bar.close()
         return model
@@ -94,6 +107,10 @@ def fit_epochs(
     device: str | torch.device | None = None,
 ) -> EpochFit:
     """A fit function for :meth:`Lineage.run`: ``epochs`` epochs of ``optimizer(params)``.
+
+    Every epoch logs its mean loss and a running metric against the original labels over the
+    epoch's training batches (``running_accuracy``, or ``running_neg_mse`` for regression),
+    computed in train mode as the batches go by, so it costs no extra pass.
 
     ``scheduler(optimizer)`` (optional) is stepped once per epoch. ``progress`` None shows a tqdm
     bar only when stderr is a terminal; True or False forces it. ``device`` moves each fresh

@@ -11,6 +11,8 @@ once its record is there, so after a crash the run resumes at the first generati
 
 from __future__ import annotations
 
+import dataclasses
+import json
 import logging
 import math
 import random
@@ -36,12 +38,15 @@ from .losses import StudentLoss
 from .metrics import Metric, default_metric, metric_name
 from .stopping import StopRule
 from .store import STORE_DTYPES, StoreError, TargetStore
+from .tb import TensorBoardLog
 
 log = logging.getLogger("filial")
 
 STATE_FILE = "lineage.json"
 STATE_FORMAT = "filial.lineage/1"
 HELDOUT_LABELS_FILE = "heldout_labels.npy"
+BASELINE_DIR = "baseline"
+BASELINE_FILE = "baseline.json"
 
 
 @dataclass
@@ -115,6 +120,7 @@ class Lineage:
     generation; different settings are refused. ``fresh=True`` deletes an existing run directory
     (only one that filial made) and starts over. ``progress`` prints one line per finished
     generation on stderr; warnings go through the ``logging`` logger ``"filial"``.
+    ``tensorboard`` is the folder for TensorBoard runs (True: ``run_dir/tb``; False: none).
     """
 
     def __init__(
@@ -138,6 +144,7 @@ class Lineage:
         seed: int = 0,
         fresh: bool = False,
         progress: bool = True,
+        tensorboard: bool | str | Path = True,
     ) -> None:
         problems: list[Exception] = []
 
@@ -204,6 +211,9 @@ class Lineage:
         self.model_fn = model_fn
         self.run_dir = Path(run_dir)
         self.progress = bool(progress)
+        if tensorboard is True:
+            tensorboard = self.run_dir / "tb"
+        self.tensorboard = TensorBoardLog(tensorboard) if tensorboard else None
         self.rule = rule
         train_print = fingerprint(train_loader)
         self.settings: dict[str, Any] = {
@@ -287,14 +297,37 @@ class Lineage:
         if self._records:
             self._say(f"resuming {run_dir} after generation {self._records[-1]['generation']}")
 
+    def _session_settings(self) -> dict[str, Any]:
+        keys = ("seed", "targets", "temperature", "label_weight", "max_generations", "patience")
+        return {key: self.settings[key] for key in keys}
+
+    def _session_metrics(self) -> dict[str, float]:
+        """The hparams-table metrics: generation 0 against the kept generation."""
+        records = self._records
+        best = StopRule.best(records)
+        if best is None:
+            return {}
+        kept, first = records[best], records[0]
+        metrics = {
+            "best_generation": float(best),
+            "generations": float(len(records) - 1),
+            "heldout_best": kept["heldout"],
+            "heldout_generation_0": first["heldout"],
+            "heldout_gain": kept["heldout"] - first["heldout"]
+            if first["heldout"] is not None
+            else None,
+        }
+        if kept.get("test") is not None and first.get("test") is not None:
+            metrics["test_best"] = kept["test"]
+            metrics["test_gain"] = kept["test"] - first["test"]
+        return {k: v for k, v in metrics.items() if v is not None}
+
     def _say(self, line: str) -> None:
         """One line of progress on stderr (through tqdm, so that open progress bars survive)."""
         if self.progress:
             tqdm.write(f"filial: {line}", file=sys.stderr)
 
     def _read_state(self) -> dict[str, Any]:
-        import json
-
         try:
             state = json.loads(self.state_path.read_text(encoding="utf-8"))
         except (OSError, ValueError) as exc:
@@ -353,6 +386,55 @@ class Lineage:
             run_dir=self.run_dir,
             model_fn=self.model_fn,
         )
+
+    def matched_baseline(
+        self, make_fit: Callable[[int], Callable[[Generation], nn.Module | None]]
+    ) -> dict[str, Any]:
+        """Train one model on the labels for as many epochs as the whole lineage used.
+
+        Generation 0 is the baseline "without generations"; this one tells the gain of
+        generations apart from the gain of more training. ``make_fit(epochs)`` returns a fit
+        function (e.g. ``lambda n: filial.fit_epochs(n, optimizer)``). The model starts from
+        generation 0's seed, so the comparison is paired. Its record goes to
+        ``RUN/baseline/baseline.json``; a finished baseline for the same epoch count is reused.
+        """
+        if not self.done:
+            raise RuntimeError("the matched baseline needs a finished lineage; run it first")
+        epochs = sum(len(r.get("epochs") or []) for r in self._records)
+        if epochs == 0:
+            raise ValueError(
+                "the lineage logged no epochs, so the matched epoch count is unknown: train with "
+                "filial.fit_epochs or call gen.log_epoch(epoch, loss=...) in your loop"
+            )
+        directory = self.run_dir / BASELINE_DIR
+        state_path = directory / BASELINE_FILE
+        if state_path.is_file():
+            stored = json.loads(state_path.read_text(encoding="utf-8"))
+            if stored.get("epochs_matched") == epochs:
+                return stored
+
+        def on_finish(gen: Generation, record: dict[str, Any], _: Predictions) -> dict[str, Any]:
+            record.update(
+                kind="matched-baseline",
+                epochs_matched=epochs,
+                checkpoint=f"{BASELINE_DIR}/{record['checkpoint']}",
+            )
+            atomic_write_json(state_path, record)
+            return record
+
+        self._seed_generation(0)
+        setup = dataclasses.replace(self._setup, run_dir=directory)
+        gen = Generation(0, self.model_fn(), setup, None, None, on_finish)
+        fitted = make_fit(epochs)(gen)
+        record = gen.finish(fitted if fitted is not None else gen.model)
+        if self.tensorboard is not None:
+            self.tensorboard.baseline(record, [r["generation"] for r in self._records])
+            self.tensorboard.close()
+        self._say(
+            f"matched baseline ({epochs} epochs on the labels): held-out "
+            f"{_fmt(record['heldout'])}, {record['seconds']:.1f} s"
+        )
+        return record
 
     def _begin(self, index: int) -> Generation:
         teacher = self._records[-1]["generation"] if self._records else None
@@ -479,6 +561,11 @@ class Lineage:
             "detail": decision.detail,
         }
         self._write_state()
+        if self.tensorboard is not None:
+            self.tensorboard.generation(record, self._records[0])
+            if decision.stop:
+                self.tensorboard.session(self._session_settings(), self._session_metrics())
+                self.tensorboard.close()
         self._say(
             f"generation {gen.index}: held-out {_fmt(record['heldout'])}, train vs labels "
             f"{_fmt(record['train'])}, ensemble {_fmt(record['ensemble'])}, "

@@ -1,0 +1,291 @@
+"""The ``filial`` command.
+
+``filial run RECIPE.toml [--set key=value ...] [--run-dir DIR] [--fresh]``
+    runs one lineage per seed of the recipe under one run directory (``DIR/seedS/``), the matched
+    baseline when the recipe asks for it, writes TensorBoard runs under ``DIR/tb`` and prints the
+    report. Rerunning the same command resumes after the last finished generation.
+``filial report RUN_DIR [--json]``
+    prints what a run found.
+
+Exit codes: 0 success; 2 a bad recipe or bad arguments (the message names the key and what was
+expected, and no run directory is left behind); 1 a failure during the run (finished generations
+are kept); 130 interrupted (the run directory is resumable, and the message says how).
+"""
+
+from __future__ import annotations
+
+import argparse
+import functools
+import json
+import shlex
+import shutil
+import sys
+import tomllib
+import traceback
+from collections.abc import Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+from torch import nn
+from torch.utils.data import DataLoader
+from tqdm.auto import tqdm
+
+from . import recipe as recipes
+from ._io import atomic_write
+from .data import check_loader
+from .fit import fit_epochs
+from .lineage import Lineage
+from .losses import StudentLoss
+from .report import RECIPE_FILE, format_report, summarize
+from .stopping import StopRule
+from .tb import seeds_spread
+
+EXIT_OK, EXIT_FAILED, EXIT_USAGE, EXIT_INTERRUPTED = 0, 1, 2, 130
+
+
+@dataclass
+class Plan:
+    """A checked recipe with its loaders and model factory, before anything is written."""
+
+    recipe: recipes.Recipe
+    train: DataLoader
+    heldout: DataLoader
+    test: DataLoader | None
+    model_fn: Any
+
+
+def _loaders(value: Any, spec: str) -> tuple[DataLoader, DataLoader, DataLoader | None]:
+    if isinstance(value, dict):
+        missing = [k for k in ("train", "heldout") if k not in value]
+        if missing:
+            raise recipes.RecipeError(
+                f"data.factory {spec!r} returned a dict without {missing}; it needs 'train' and "
+                "'heldout' (and optionally 'test') DataLoaders"
+            )
+        value = (value["train"], value["heldout"], value.get("test"))
+    if not isinstance(value, (tuple, list)) or len(value) not in (2, 3):
+        raise recipes.RecipeError(
+            f"data.factory {spec!r} should return (train, heldout) or (train, heldout, test) "
+            f"DataLoaders, but returned {type(value).__name__}"
+        )
+    train, heldout, *rest = value
+    test = rest[0] if rest else None
+    for role, loader in (("train", train), ("heldout", heldout), ("test", test)):
+        if loader is None and role == "test":
+            continue
+        try:
+            check_loader(loader, f"the {role} loader from data.factory {spec!r}")
+        except TypeError as exc:
+            raise recipes.RecipeError(str(exc)) from exc
+    return train, heldout, test
+
+
+def plan(recipe_path: str, overrides: Sequence[str], run_dir: str | None) -> Plan:
+    """Everything that can be checked before a run directory is touched."""
+    recipe = recipes.load(recipe_path, overrides)
+    if run_dir:
+        recipe.values["run"]["run_dir"] = run_dir
+    data_factory, data_kwargs = recipe.factory("data")
+    model_factory, model_kwargs = recipe.factory("model")
+    spec = recipe["data"]["factory"]
+    try:
+        loaders = data_factory(**data_kwargs)
+    except (OSError, ImportError, ValueError, TypeError, KeyError) as exc:
+        raise recipes.RecipeError(f"data.factory {spec!r} failed: {exc}") from exc
+    train, heldout, test = _loaders(loaders, spec)
+    model_fn = functools.partial(model_factory, **model_kwargs)
+    try:
+        probe = model_fn()
+    except (ImportError, ValueError, TypeError, KeyError) as exc:
+        raise recipes.RecipeError(
+            f"model.factory {recipe['model']['factory']!r} failed: {exc}"
+        ) from exc
+    if not isinstance(probe, nn.Module):
+        raise recipes.RecipeError(
+            f"model.factory {recipe['model']['factory']!r} should return a fresh nn.Module, but "
+            f"returned {type(probe).__name__}"
+        )
+    g = recipe["generations"]
+    try:
+        StudentLoss(g["targets"], g["temperature"], g["label_weight"])
+        StopRule(g["max"], g["patience"], g["min_gain"])
+    except ValueError as exc:
+        raise recipes.RecipeError(f"[generations]: {exc}") from exc
+    if g["views"] != 1:
+        raise recipes.RecipeError(
+            "generations.views: several views per sample need replayed augmentation, which this "
+            "version of filial does not have yet; use views = 1"
+        )
+    return Plan(recipe, train, heldout, test, model_fn)
+
+
+def _prepare_run_dir(recipe: recipes.Recipe, fresh: bool) -> tuple[Path, bool]:
+    """Check (or clear, with ``fresh``) the run directory; return it and whether it is new."""
+    run_dir = Path(recipe["run"]["run_dir"])
+    saved = run_dir / RECIPE_FILE
+    if run_dir.exists() and not run_dir.is_dir():
+        raise recipes.RecipeError(f"run_dir {run_dir} exists and is not a directory")
+    if run_dir.is_dir() and any(run_dir.iterdir()):
+        if not saved.is_file():
+            raise recipes.RecipeError(
+                f"{run_dir} is not empty and holds no {RECIPE_FILE}: it is not a filial run "
+                "directory. Choose another one with --run-dir."
+            )
+        if fresh:
+            shutil.rmtree(run_dir)
+        else:
+            old = recipes.Recipe(tomllib.loads(saved.read_text(encoding="utf-8"))).comparable()
+            changed = recipes.differences(old, recipe.comparable())
+            if changed:
+                raise recipes.RecipeError(
+                    f"{run_dir} holds a run of another recipe, so it cannot be resumed:\n  "
+                    + "\n  ".join(changed)
+                    + "\nUse --fresh to start over there, or another --run-dir."
+                )
+            return run_dir, False
+    new = not run_dir.exists()
+    run_dir.mkdir(parents=True, exist_ok=True)
+    text = recipe.to_toml()
+    atomic_write(saved, lambda handle: handle.write(text.encode("utf-8")))
+    return run_dir, new
+
+
+def _lineage(p: Plan, run_dir: Path, seed: int, quiet: bool) -> Lineage:
+    g = p.recipe["generations"]
+    return Lineage(
+        p.model_fn,
+        p.train,
+        p.heldout,
+        run_dir=run_dir / f"seed{seed}",
+        targets=g["targets"],
+        temperature=g["temperature"],
+        label_weight=g["label_weight"],
+        max_generations=g["max"],
+        patience=g["patience"],
+        min_gain=g["min_gain"],
+        views=g["views"],
+        store_dtype=g["store_dtype"],
+        test_loader=p.test,
+        seed=seed,
+        progress=not quiet,
+        tensorboard=run_dir / "tb" / f"seed{seed}",
+    )
+
+
+def _train(p: Plan, run_dir: Path, lineages: list[Lineage], on_terminal: bool) -> None:
+    training = p.recipe["training"]
+    optimizer = recipes.build_optimizer(training)
+
+    def make_fit(count: int):
+        scheduler = recipes.build_scheduler(training, count)
+        return fit_epochs(count, optimizer, scheduler, progress=on_terminal)
+
+    fit = make_fit(training["epochs"])
+    for lineage in lineages:
+        seed = lineage.settings["seed"]
+        # On a terminal: a bar for the generations and one for the epochs, cleared when done;
+        # otherwise the lineage prints one plain line per generation. Never both.
+        bar = tqdm(
+            total=lineage.settings["max_generations"] + 1,
+            initial=len(lineage.result.records),
+            desc=f"seed {seed} generations",
+            unit="gen",
+            leave=False,
+            disable=not on_terminal,
+        )
+        for gen in lineage:
+            model = fit(gen)
+            record = gen.finish(model)
+            bar.update(1)
+            bar.set_postfix(heldout=f"{record['heldout'] or float('nan'):.4f}", refresh=True)
+        bar.close()
+        if p.recipe["run"]["baseline"] == "matched":
+            lineage.matched_baseline(make_fit)
+    if len(lineages) > 1:
+        depth = max(len(x.result.records) for x in lineages)
+        rows = summarize(run_dir)["generations"][:depth]
+        seeds_spread(
+            run_dir / "tb", [r["heldout_mean"] for r in rows], [r["heldout_std"] for r in rows]
+        )
+
+
+def _resume_command(argv: Sequence[str]) -> str:
+    kept = [a for a in argv if a != "--fresh"]
+    return "filial " + shlex.join(kept)
+
+
+def _run(args: argparse.Namespace, argv: Sequence[str]) -> int:
+    created: Path | None = None
+    on_terminal = sys.stderr.isatty()
+    try:
+        p = plan(args.recipe, args.set, args.run_dir)
+        run_dir, new = _prepare_run_dir(p.recipe, args.fresh)
+        created = run_dir if new else None
+        lineages = [_lineage(p, run_dir, s, quiet=on_terminal) for s in p.recipe["run"]["seeds"]]
+    except (recipes.RecipeError, ValueError, TypeError) as exc:
+        if created is not None:
+            shutil.rmtree(created, ignore_errors=True)
+        print(f"filial: {exc}", file=sys.stderr)
+        return EXIT_USAGE
+    try:
+        _train(p, run_dir, lineages, on_terminal)
+    except KeyboardInterrupt:
+        print(
+            f"\nfilial: interrupted. {run_dir} keeps every finished generation; resume with:\n"
+            f"  {_resume_command(argv)}",
+            file=sys.stderr,
+        )
+        return EXIT_INTERRUPTED
+    except Exception as exc:  # report, keep the run directory, exit 1
+        traceback.print_exc(file=sys.stderr)
+        print(
+            f"filial: the run failed: {type(exc).__name__}: {exc}\n"
+            f"Finished generations are kept in {run_dir}; fix the cause and rerun\n"
+            f"  {_resume_command(argv)}",
+            file=sys.stderr,
+        )
+        return EXIT_FAILED
+    print(format_report(summarize(run_dir)))
+    return EXIT_OK
+
+
+def _report(args: argparse.Namespace) -> int:
+    try:
+        summary = summarize(args.run_dir)
+    except (ValueError, OSError, KeyError, tomllib.TOMLDecodeError) as exc:
+        print(f"filial: {exc}", file=sys.stderr)
+        return EXIT_USAGE
+    print(json.dumps(summary, indent=2) if args.json else format_report(summary))
+    return EXIT_OK
+
+
+def parser() -> argparse.ArgumentParser:
+    top = argparse.ArgumentParser(
+        prog="filial",
+        description="Multi-generation self-distillation from TOML recipes.",
+    )
+    sub = top.add_subparsers(dest="command", required=True)
+    run = sub.add_parser("run", help="run (or resume) the lineages of a recipe")
+    run.add_argument("recipe", help="a TOML recipe, e.g. recipes/digits_ce.toml")
+    run.add_argument(
+        "--set",
+        action="append",
+        default=[],
+        metavar="KEY=VALUE",
+        help="override a recipe key, e.g. --set generations.temperature=4 (repeatable)",
+    )
+    run.add_argument("--run-dir", help="where to write the run (default: the recipe's run_dir)")
+    run.add_argument("--fresh", action="store_true", help="delete an earlier run there first")
+    report = sub.add_parser("report", help="print what a run found")
+    report.add_argument("run_dir")
+    report.add_argument("--json", action="store_true", help="print the report as JSON")
+    return top
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    argv = list(sys.argv[1:] if argv is None else argv)
+    args = parser().parse_args(argv)
+    if args.command == "run":
+        return _run(args, argv)
+    return _report(args)
