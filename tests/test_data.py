@@ -43,6 +43,7 @@ from filial.data import (
     check_loader,
     derive_seed,
     fingerprint,
+    probe,
     sequential_loader,
     split_pair,
     training_loader,
@@ -849,3 +850,37 @@ def test_fingerprint_follows_the_labels_and_leaves_the_rng_alone():
     changed.labels[7] = (changed.labels[7] + 1) % CLASSES
     assert fingerprint(DataLoader(changed, batch_size=8)) != first
     assert fingerprint(DataLoader(AugmentedData(41, 0), batch_size=8)) != first
+
+
+@pytest.mark.slow
+def test_a_loader_that_yields_out_of_order_is_still_evaluated_in_order(tmp_path):
+    """in_order=False lets workers hand batches back as they finish; the passes must not care."""
+    train = DataLoader(tensor_data(64), batch_size=8, shuffle=True, num_workers=2, in_order=False)
+    lineage = filial.Lineage(
+        make_linear,
+        train,
+        heldout_loader(),
+        run_dir=tmp_path / "run",
+        max_generations=1,
+        store_dtype="float32",
+    )
+    check = TargetCheck()
+    drive(lineage, 2, on_batch=check)
+    check.assert_aligned({"atol": 1e-5, "rtol": 1e-5})
+    assert [r["generation"] for r in lineage.result.records] == [0, 1]
+
+
+def test_probe_fingerprints_inputs_when_they_repeat():
+    """Same labels, other inputs: a different fingerprint (deterministic data); augmentation
+    that draws from the global generators is made repeatable by the probe's seeding."""
+    base = tensor_data(40)
+    inputs, labels = base.tensors
+    first = probe(DataLoader(base, batch_size=8))
+    assert first.deterministic
+    moved = probe(DataLoader(TensorDataset(inputs * 100, labels), batch_size=8))
+    assert moved.fingerprint != first.fingerprint
+    augmented = probe(DataLoader(AugmentedData(40, 0), batch_size=8))
+    assert augmented.deterministic
+    assert (
+        augmented.fingerprint == probe(DataLoader(AugmentedData(40, 0), batch_size=8)).fingerprint
+    )

@@ -5,11 +5,12 @@ from __future__ import annotations
 import json
 import logging
 
+import numpy as np
 import pytest
 import torch
 from conftest import TinyNet, blobs
 from torch import nn
-from torch.utils.data import DataLoader
+from torch.utils.data import DataLoader, TensorDataset
 
 import filial
 from filial.checkpoint import load_checkpoint
@@ -144,9 +145,9 @@ def test_other_settings_are_refused_by_name(loaders, tmp_path):
     _hook(_lineage(loaders, run, max_generations=1))
     before = sorted((p.name, p.stat().st_mtime_ns) for p in run.rglob("*"))
     with pytest.raises(ValueError) as info:
-        _lineage(loaders, run, max_generations=1, temperature=4.0, targets="l2")
+        _lineage(loaders, run, max_generations=1, temperature=4.0, label_weight=0.5)
     message = str(info.value)
-    assert "temperature: 1.0 in the run, 4.0 now" in message and "targets" in message
+    assert "temperature: 1.0 in the run, 4.0 now" in message and "label_weight" in message
     assert "max_generations" not in message
     other_data = (DataLoader(blobs(80, seed=9), batch_size=16), loaders[1], loaders[2])
     with pytest.raises(ValueError, match="train_fingerprint"):
@@ -270,3 +271,153 @@ def test_progress_prints_one_line_per_generation(loaders, tmp_path, capsys):
     assert "stop (max-generations)" in lines[-1]
     _hook(_lineage(loaders, tmp_path / "quiet", max_generations=1, progress=False))
     assert capsys.readouterr().err == ""
+
+
+def test_metric_results_become_floats_and_bad_ones_are_named(loaders, tmp_path):
+    def numpy_accuracy(outputs, labels):
+        return np.float32((outputs.argmax(1) == labels).float().mean())
+
+    result = _hook(_lineage(loaders, tmp_path / "np", max_generations=1, metric=numpy_accuracy))
+    assert all(type(r["heldout"]) is float and type(r["train"]) is float for r in result.records)
+    assert result.best is not None
+
+    def words(outputs, labels):
+        return "good"
+
+    lineage = _lineage(loaders, tmp_path / "bad", metric=words)
+    with pytest.raises(TypeError, match="metric .*words must return a number"):
+        _hook(lineage)
+    assert json.loads((tmp_path / "bad" / "lineage.json").read_text())["records"] == []
+
+
+def test_failed_state_write_keeps_memory_and_disk_in_step(loaders, tmp_path, monkeypatch):
+    lineage = _lineage(loaders, tmp_path / "run", max_generations=1)
+    gen = next(iter(lineage))
+    real = filial.lineage.atomic_write_json
+
+    def full_disk(path, data):
+        raise OSError(28, "No space left on device")
+
+    monkeypatch.setattr(filial.lineage, "atomic_write_json", full_disk)
+    with pytest.raises(OSError, match="No space"):
+        gen.finish(gen.model)
+    assert lineage.result.records == [] and not gen.finished
+    monkeypatch.setattr(filial.lineage, "atomic_write_json", real)
+    gen.finish(gen.model)  # the same generation can be finished once the disk has room
+    assert [r["generation"] for r in lineage.result.records] == [0]
+
+
+def test_crash_inside_finish_resumes_to_the_same_records(loaders, tmp_path, monkeypatch):
+    whole = _hook(_lineage(loaders, tmp_path / "whole"))
+    real = filial.generation.TargetStore.write
+
+    def crash_in_generation_two(directory, *args, **kwargs):
+        if str(directory).endswith("gen2"):
+            raise KeyboardInterrupt  # as if the process stopped while writing targets
+        return real(directory, *args, **kwargs)
+
+    monkeypatch.setattr(filial.generation.TargetStore, "write", crash_in_generation_two)
+    with pytest.raises(KeyboardInterrupt):
+        _hook(_lineage(loaders, tmp_path / "run"))
+    monkeypatch.setattr(filial.generation.TargetStore, "write", real)
+    assert (tmp_path / "run" / "gen2" / "student.pt").is_file()  # written, never recorded
+    resumed = _lineage(loaders, tmp_path / "run")
+    assert [r["generation"] for r in resumed.result.records] == [0, 1]
+    assert _stable(_hook(resumed).records) == _stable(whole.records)
+
+
+def test_settings_may_change_until_a_generation_finishes(loaders, tmp_path, caplog):
+    run = tmp_path / "run"
+    _lineage(loaders, run, temperature=2.0)  # created, nothing finished
+    with caplog.at_level(logging.WARNING, logger="filial"):
+        lineage = _lineage(loaders, run, temperature=3.0)
+    assert "no generation had finished" in caplog.text
+    assert json.loads((run / "lineage.json").read_text())["settings"]["temperature"] == 3.0
+    assert lineage.settings["temperature"] == 3.0
+
+
+def test_conflicting_or_mistyped_options_are_refused(loaders, tmp_path):
+    train, heldout, _ = loaders
+    with pytest.raises(ValueError, match="applies to targets='ce' only"):
+        filial.Lineage(
+            TinyNet(), train, heldout, run_dir=tmp_path / "a", targets="l2", temperature=3.0
+        )
+    floats = DataLoader(TensorDataset(torch.randn(20, 5), torch.randn(20, 3)), batch_size=5)
+    with pytest.raises(ValueError, match="targets='ce' needs integer class labels"):
+        filial.Lineage(TinyNet(), floats, heldout, run_dir=tmp_path / "b")
+    with pytest.raises(ValueError, match="max_generations should be an integer"):
+        filial.Lineage(TinyNet(), train, heldout, run_dir=tmp_path / "c", max_generations=True)
+    lineage = filial.Lineage(
+        TinyNet(), train, heldout, run_dir=tmp_path / "d", seed=np.int64(3), patience=np.int32(2)
+    )
+    assert lineage.settings["seed"] == 3 and type(lineage.settings["seed"]) is int
+    assert not any((tmp_path / name).exists() for name in "abc")
+
+
+def test_best_model_leaves_the_global_rng_alone(loaders, tmp_path):
+    result = _hook(_lineage(loaders, tmp_path / "run", max_generations=1))
+    before = torch.get_rng_state()
+    result.best_model()
+    assert torch.equal(before, torch.get_rng_state())
+
+
+def test_diverged_retry_removes_an_earlier_attempts_targets(loaders, tmp_path, monkeypatch):
+    real = filial.lineage.atomic_write_json
+    calls = []
+
+    def crash_on_record_of_generation_one(path, data):
+        calls.append(len(data["records"]))
+        if len(data["records"]) == 2 and len(calls) == 3:
+            raise KeyboardInterrupt  # gen1's store is on disk, its record is not
+        return real(path, data)
+
+    monkeypatch.setattr(filial.lineage, "atomic_write_json", crash_on_record_of_generation_one)
+    with pytest.raises(KeyboardInterrupt):
+        _hook(_lineage(loaders, tmp_path / "run"))
+    monkeypatch.setattr(filial.lineage, "atomic_write_json", real)
+    assert (tmp_path / "run" / "gen1" / "targets.json").is_file()
+    result = _hook(_lineage(loaders, tmp_path / "run"), poison=1)
+    assert result.stop_reason == "diverged"
+    assert not (tmp_path / "run" / "gen1" / "targets.json").exists()
+    assert not (tmp_path / "run" / "gen1" / "targets.npy").exists()
+
+
+def test_other_inputs_with_the_same_labels_are_refused_on_resume(loaders, tmp_path):
+    run = tmp_path / "run"
+    _hook(_lineage(loaders, run, max_generations=1), stop_after=0)
+    inputs, labels = loaders[0].dataset.tensors
+    scaled = DataLoader(TensorDataset(inputs * 100, labels), batch_size=16, shuffle=True)
+    with pytest.raises(ValueError, match="train_fingerprint"):
+        _lineage((scaled, loaders[1], loaders[2]), run, max_generations=1)
+
+
+@pytest.mark.skipif(not torch.cuda.is_available(), reason="needs a CUDA device")
+def test_model_and_loaders_on_the_gpu(tmp_path):
+    """A user with CUDA passes a model and data on the GPU; nothing assumes the CPU."""
+    device = torch.device("cuda")
+    data = blobs(64)
+    train = DataLoader(
+        TensorDataset(*(t.to(device) for t in data.tensors)),
+        batch_size=16,
+        shuffle=True,
+        generator=torch.Generator(device="cpu"),
+    )
+    heldout = DataLoader(blobs(32, seed=5), batch_size=16)
+    lineage = filial.Lineage(
+        lambda: TinyNet()().to(device), train, heldout, run_dir=tmp_path / "gpu", max_generations=1
+    )
+    for gen in lineage:
+        model = gen.model
+        assert next(model.parameters()).is_cuda
+        opt = torch.optim.SGD(model.parameters(), lr=0.1)
+        for inputs, labels, targets in gen.loader:
+            loss = gen.loss(model(inputs.to(device)), labels, targets)
+            assert loss.is_cuda
+            opt.zero_grad()
+            loss.backward()
+            opt.step()
+        gen.finish(model)
+    result = lineage.result
+    assert [r["generation"] for r in result.records] == [0, 1]
+    assert all(isinstance(r["heldout"], float) for r in result.records)
+    assert not next(result.best_model().parameters()).is_cuda  # checkpoints load on the CPU

@@ -22,6 +22,7 @@ import hashlib
 import inspect
 import random
 from collections.abc import Iterator, Sequence
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -211,6 +212,9 @@ def sequential_loader(loader: DataLoader, seed: int) -> DataLoader:
     """
     generator = torch.Generator()
     generator.manual_seed(seed)
+    settings = _common_settings(loader)
+    if "in_order" in settings:
+        settings["in_order"] = True  # the passes fill their buffers in index order
     return DataLoader(
         IndexedDataset(loader.dataset),
         batch_size=batch_size_of(loader),
@@ -218,39 +222,85 @@ def sequential_loader(loader: DataLoader, seed: int) -> DataLoader:
         drop_last=False,
         collate_fn=IndexedCollate(loader.collate_fn, keep_indices=True),
         generator=generator,
-        **_common_settings(loader),
+        **settings,
     )
 
 
 @contextlib.contextmanager
 def preserved_rng() -> Iterator[None]:
-    """Run a block without moving torch's (CPU), Python's or numpy's global generators."""
+    """Run a block without moving torch's, Python's or numpy's global generators.
+
+    CUDA generators are forked too once CUDA is in use (never initialising it otherwise).
+    """
     py_state, np_state = random.getstate(), np.random.get_state()
+    devices = list(range(torch.cuda.device_count())) if torch.cuda.is_initialized() else []
     try:
-        with torch.random.fork_rng(devices=[]):
+        with torch.random.fork_rng(devices=devices):
             yield
     finally:
         random.setstate(py_state)
         np.random.set_state(np_state)
 
 
-def fingerprint(loader: DataLoader, probes: int = 64) -> str:
-    """A cheap fingerprint of a loader's dataset: its length and the labels of spread-out samples.
+def _tensor_bytes(value: Any, digest: Any) -> None:
+    """Feed every tensor or array in (nested lists, tuples, dicts of) ``value`` to ``digest``."""
+    if isinstance(value, torch.Tensor):
+        digest.update(str(value.dtype).encode() + str(tuple(value.shape)).encode())
+        digest.update(value.detach().cpu().contiguous().numpy().tobytes())
+    elif isinstance(value, np.ndarray):
+        digest.update(value.dtype.str.encode() + str(value.shape).encode() + value.tobytes())
+    elif isinstance(value, (list, tuple)):
+        for item in value:
+            _tensor_bytes(item, digest)
+    elif isinstance(value, dict):
+        for key in sorted(value, key=str):
+            digest.update(str(key).encode())
+            _tensor_bytes(value[key], digest)
+    else:
+        digest.update(repr(value).encode())
 
-    The probe samples are fetched inside a forked RNG (torch, and Python's and numpy's global
-    state restored afterwards), so a dataset with random augmentation does not disturb the
-    caller's random streams.
+
+@dataclass(frozen=True)
+class Probe:
+    """What a few spread-out samples of a loader's dataset tell before any training."""
+
+    fingerprint: str
+    labels: Any  # the probe samples' labels, collated by the user's collate_fn
+    deterministic: bool  # the same index gave the same inputs twice
+
+
+def probe(loader: DataLoader, probes: int = 64) -> Probe:
+    """Fingerprint a loader's dataset from its length and up to ``probes`` spread-out samples.
+
+    The samples are fetched with torch's, Python's and numpy's generators seeded to 0 (inside a
+    fork, so the caller's streams do not move), which makes common random augmentation
+    repeatable. Inputs enter the fingerprint only when a second fetch gives the same bytes; a
+    dataset that still changes (its own private random state) is fingerprinted by its labels.
     """
     dataset = loader.dataset
     size = len(dataset)
     indices = sorted({int(i) for i in np.linspace(0, size - 1, num=min(probes, size))})
+
+    def fetch(chosen: list[int]) -> tuple[Any, Any]:
+        torch.manual_seed(0)
+        random.seed(0)
+        np.random.seed(0)
+        return split_pair(loader.collate_fn([dataset[i] for i in chosen]))
+
     with preserved_rng():
-        samples = [dataset[i] for i in indices]
-    _, labels = split_pair(loader.collate_fn(samples))
-    digest = hashlib.sha256(f"n={size};idx={indices[:3]}..{indices[-1]}".encode())
-    if isinstance(labels, torch.Tensor):
-        digest.update(str(labels.dtype).encode())
-        digest.update(labels.detach().cpu().contiguous().numpy().tobytes())
-    else:
-        digest.update(repr(labels).encode())
-    return digest.hexdigest()
+        inputs, labels = fetch(indices)
+        again, _ = fetch(indices)
+    first_digest, again_digest = hashlib.sha256(), hashlib.sha256()
+    _tensor_bytes(inputs, first_digest)
+    _tensor_bytes(again, again_digest)
+    deterministic = first_digest.digest() == again_digest.digest()
+    digest = hashlib.sha256(f"n={size};probes={len(indices)}".encode())
+    _tensor_bytes(labels, digest)
+    if deterministic:
+        digest.update(first_digest.digest())
+    return Probe(digest.hexdigest(), labels, deterministic)
+
+
+def fingerprint(loader: DataLoader, probes: int = 64) -> str:
+    """The :func:`probe` fingerprint of a loader's dataset."""
+    return probe(loader, probes).fingerprint

@@ -217,7 +217,12 @@ def main(argv: Sequence[str] | None = None) -> int:
         f"wrong labels, {len(room.heldout)} checked (held-out), {len(room.test)} for the report"
     )
     print(generation_table(result.records, result.best))
-    print(f"stopped: {result.stop_reason}; best generation {result.best} ({result.checkpoint()})")
+    kept = (
+        f"best generation {result.best} ({result.checkpoint()})"
+        if result.best is not None
+        else ("no generation finished without diverging")
+    )
+    print(f"stopped: {result.stop_reason}; {kept}")
     return 0
 
 

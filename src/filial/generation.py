@@ -27,7 +27,7 @@ from ._io import atomic_write
 from .checkpoint import save_checkpoint, unwrap
 from .data import derive_seed, preserved_rng, sequential_loader, training_loader
 from .losses import StudentLoss
-from .metrics import Metric, default_metric
+from .metrics import Metric
 from .store import TargetStore
 
 HELDOUT_FILE = "heldout.npy"
@@ -43,7 +43,7 @@ class Setup:
     heldout_loader: DataLoader
     test_loader: DataLoader | None
     loss: StudentLoss
-    metric: Metric | None
+    metric: Metric  # resolved once by the lineage; returns a Python float
     store_dtype: str
     views: int
     fingerprint: str
@@ -106,7 +106,9 @@ def predict(model: nn.Module, loader: DataLoader, seed: int) -> Predictions:
                     )
                 batch_labels = torch.as_tensor(batch_labels)
                 if outputs is None or labels is None:
-                    outputs = torch.empty((size, out.shape[1]), dtype=torch.float32, device=device)
+                    outputs = torch.empty(
+                        (size, out.shape[1]), dtype=torch.float32, device=out.device
+                    )
                     labels = torch.empty((size, *batch_labels.shape[1:]), dtype=batch_labels.dtype)
                 elif out.shape[1] != outputs.shape[1]:
                     raise ValueError(
@@ -134,7 +136,24 @@ def _entropy(outputs: torch.Tensor, temperature: float) -> float:
 
 
 def _finite_module(model: nn.Module) -> bool:
-    return all(bool(torch.isfinite(p).all()) for p in unwrap(model).parameters())
+    checks = [torch.isfinite(p).all() for p in unwrap(model).parameters()]
+    return bool(torch.stack(checks).all()) if checks else True  # one device sync
+
+
+def write_targets(
+    setup: Setup, directory: Path, outputs: torch.Tensor, teacher_sha256: str
+) -> TargetStore:
+    """Write a teacher's training-set outputs ``(N, C)`` as the store in ``directory``."""
+    rows = outputs.numpy()[:, None, :]  # (N, 1, C): a view, no copy
+    if setup.views > 1:
+        rows = rows.repeat(setup.views, axis=1)
+    return TargetStore.write(
+        directory,
+        rows,
+        dtype=setup.store_dtype,
+        fingerprint=setup.fingerprint,
+        teacher_sha256=teacher_sha256,
+    )
 
 
 class Generation:
@@ -201,7 +220,7 @@ class Generation:
         train = predict(model, setup.train_loader, seed)
         heldout = predict(model, setup.heldout_loader, seed)
         test = predict(model, setup.test_loader, seed) if setup.test_loader is not None else None
-        metric = setup.metric or default_metric(train.labels)
+        metric = setup.metric
         diverged = not (
             _finite_module(model)
             and bool(torch.isfinite(train.outputs).all())
@@ -228,15 +247,12 @@ class Generation:
             self.directory / HELDOUT_FILE,
             lambda handle: np.save(handle, heldout.outputs.numpy(), allow_pickle=False),
         )
-        if not diverged:
-            outputs = train.outputs.numpy()[:, None, :].repeat(setup.views, axis=1)
-            TargetStore.write(
-                self.directory,
-                outputs,
-                dtype=setup.store_dtype,
-                fingerprint=setup.fingerprint,
-                teacher_sha256=teacher_sha,
-            )
+        if diverged:
+            # An earlier attempt at this generation may have left a store; it is never a teacher.
+            for name in (TargetStore.MANIFEST, TargetStore.ARRAY):
+                (self.directory / name).unlink(missing_ok=True)
+        else:
+            write_targets(setup, self.directory, train.outputs, teacher_sha)
         record["checkpoint"] = f"gen{self.index}/{CHECKPOINT_FILE}"
         record["checkpoint_sha256"] = teacher_sha
         record["epochs"] = list(self.history)

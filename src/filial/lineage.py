@@ -32,11 +32,11 @@ from tqdm.auto import tqdm
 
 from ._io import atomic_write, atomic_write_json, sweep_temporaries
 from .checkpoint import load_checkpoint
-from .data import check_loader, derive_seed, fingerprint
-from .generation import HELDOUT_FILE, Generation, Predictions, Setup, predict
+from .data import check_loader, derive_seed, preserved_rng, probe
+from .generation import HELDOUT_FILE, Generation, Predictions, Setup, predict, write_targets
 from .losses import StudentLoss
-from .metrics import Metric, default_metric, metric_name
-from .stopping import StopRule
+from .metrics import Metric, as_float_metric, default_metric, metric_name
+from .stopping import StopRule, as_count
 from .store import STORE_DTYPES, StoreError, TargetStore
 from .tb import TensorBoardLog
 
@@ -72,7 +72,8 @@ class Result:
         if self.best is None:
             raise ValueError("no generation finished without diverging, so there is no best model")
         record = next(r for r in self.records if r["generation"] == self.best)
-        model = self.model_fn()
+        with preserved_rng():  # building a module draws initial weights; keep the caller's RNG
+            model = self.model_fn()
         model.load_state_dict(
             load_checkpoint(self.run_dir / record["checkpoint"], record.get("checkpoint_sha256"))
         )
@@ -175,9 +176,15 @@ class Lineage:
             )
         loss = attempt(lambda: StudentLoss(targets, temperature, label_weight))
         rule = attempt(lambda: StopRule(max_generations, patience, min_gain))
-        if not isinstance(views, int) or views < 1:
-            problems.append(ValueError(f"views should be an integer >= 1, but got views={views!r}"))
-        elif views != 1:
+        if targets == "l2" and temperature != 1.0:
+            problems.append(
+                ValueError(
+                    f"temperature={temperature!r} applies to targets='ce' only; with targets='l2' "
+                    "students regress on the raw outputs. Leave temperature at 1.0."
+                )
+            )
+        views = attempt(lambda: as_count(views, "views", minimum=1))
+        if views is not None and views != 1:
             problems.append(
                 ValueError(
                     f"views={views}: several cached views per sample need replayed augmentation, "
@@ -198,15 +205,28 @@ class Lineage:
             )
         if metric is not None and not callable(metric):
             problems.append(TypeError(f"metric must be callable or None, but got {metric!r}"))
-        if not isinstance(seed, int) or isinstance(seed, bool) or seed < 0:
-            problems.append(ValueError(f"seed should be an integer >= 0, but got seed={seed!r}"))
+        seed = attempt(lambda: as_count(seed, "seed", minimum=0))
+        train_probe = heldout_probe = None
+        if not problems:
+            train_probe = attempt(lambda: probe(train_loader))
+            heldout_probe = attempt(lambda: probe(heldout_loader))
+        labels = getattr(train_probe, "labels", None)
+        if isinstance(labels, torch.Tensor) and targets == "ce" and labels.is_floating_point():
+            problems.append(
+                ValueError(
+                    f"targets='ce' needs integer class labels, but the training labels are "
+                    f"{labels.dtype}. Use targets='l2' for regression."
+                )
+            )
         if problems:
             if len(problems) == 1:
                 raise problems[0]
             raise ValueError(
                 "several settings are wrong:\n" + "\n".join(f"  - {p}" for p in problems)
             )
-        assert loss is not None and rule is not None  # guaranteed by the checks above
+        # guaranteed by the checks above
+        assert loss is not None and rule is not None and seed is not None and views is not None
+        assert train_probe is not None and heldout_probe is not None
 
         self.model_fn = model_fn
         self.run_dir = Path(run_dir)
@@ -215,13 +235,13 @@ class Lineage:
             tensorboard = self.run_dir / "tb"
         self.tensorboard = TensorBoardLog(tensorboard) if tensorboard else None
         self.rule = rule
-        train_print = fingerprint(train_loader)
+        train_print = train_probe.fingerprint
         self.settings: dict[str, Any] = {
             "targets": targets,
             "temperature": float(temperature),
             "label_weight": float(label_weight),
-            "max_generations": max_generations,
-            "patience": patience,
+            "max_generations": rule.max_generations,
+            "patience": rule.patience,
             "min_gain": float(min_gain),
             "views": views,
             "store_dtype": store_dtype,
@@ -233,7 +253,7 @@ class Lineage:
             "heldout_size": len(heldout_loader.dataset),  # type: ignore[arg-type]
             "test_size": None if test_loader is None else len(test_loader.dataset),  # type: ignore[arg-type]
             "train_fingerprint": train_print,
-            "heldout_fingerprint": fingerprint(heldout_loader),
+            "heldout_fingerprint": heldout_probe.fingerprint,
         }
         self._setup = Setup(
             run_dir=self.run_dir,
@@ -241,7 +261,9 @@ class Lineage:
             heldout_loader=heldout_loader,
             test_loader=test_loader,
             loss=loss,
-            metric=metric,
+            metric=as_float_metric(
+                metric or default_metric(torch.as_tensor(train_probe.labels)), metric_name(metric)
+            ),
             store_dtype=store_dtype,
             views=views,
             fingerprint=train_print,
@@ -286,6 +308,14 @@ class Lineage:
             for key, value in self.settings.items()
             if state["settings"].get(key) != value
         ]
+        if differences and not state["records"]:
+            log.warning(
+                "%s: no generation had finished, so the new settings replace the old (%s)",
+                run_dir,
+                "; ".join(differences),
+            )
+            self._write_state()
+            return
         if differences:
             raise ValueError(
                 f"{run_dir} holds a run made with other settings, so it cannot be resumed:\n  "
@@ -336,14 +366,16 @@ class Lineage:
             raise ValueError(f"{self.state_path} is not a filial lineage file ({STATE_FORMAT})")
         return state
 
-    def _write_state(self) -> None:
+    def _write_state(
+        self, records: list[dict[str, Any]] | None = None, decision: dict[str, Any] | None = None
+    ) -> None:
         atomic_write_json(
             self.state_path,
             {
                 "format": STATE_FORMAT,
                 "settings": self.settings,
-                "records": self._records,
-                "decision": self._decision,
+                "records": self._records if records is None else records,
+                "decision": self._decision if decision is None else decision,
             },
         )
 
@@ -509,14 +541,8 @@ class Lineage:
             load_checkpoint(self.run_dir / record["checkpoint"], record.get("checkpoint_sha256"))
         )
         seed = derive_seed(self.settings["seed"], record["generation"], 1)
-        outputs = predict(model, self._setup.train_loader, seed).outputs.numpy()
-        return TargetStore.write(
-            directory,
-            outputs[:, None, :].repeat(self._setup.views, axis=1),
-            dtype=self._setup.store_dtype,
-            fingerprint=expected,
-            teacher_sha256=record["checkpoint_sha256"],
-        )
+        outputs = predict(model, self._setup.train_loader, seed).outputs
+        return write_targets(self._setup, directory, outputs, record["checkpoint_sha256"])
 
     def _heldout_outputs(self, generation: int) -> torch.Tensor:
         if generation not in self._heldout:
@@ -541,7 +567,7 @@ class Lineage:
                 lambda handle: np.save(handle, heldout.labels.numpy(), allow_pickle=False),
             )
         if not record["diverged"]:
-            metric = self._setup.metric or default_metric(heldout.labels)
+            metric = self._setup.metric
             members = [r["generation"] for r in self._records if not r.get("diverged")]
             stack = [self._heldout_outputs(g) for g in members] + [heldout.outputs]
             record["ensemble"] = metric(_ensemble(stack, self.settings["targets"]), heldout.labels)
@@ -553,14 +579,17 @@ class Lineage:
         decision = self.rule.decide([*self._records, record])
         if decision.stop:
             record["stop"] = {"reason": decision.reason, "best": decision.best, **decision.detail}
-        self._records.append(record)
-        self._decision = {
+        state = {
             "stop": decision.stop,
             "reason": decision.reason,
             "best": decision.best,
             "detail": decision.detail,
         }
-        self._write_state()
+        # On disk first: if the write fails, memory still agrees with the file and the
+        # generation can be finished again.
+        self._write_state([*self._records, record], state)
+        self._records.append(record)
+        self._decision = state
         if self.tensorboard is not None:
             self.tensorboard.generation(record, self._records[0])
             if decision.stop:

@@ -138,11 +138,11 @@ class StudentLoss:
     def __call__(
         self, outputs: torch.Tensor, labels: torch.Tensor, targets: torch.Tensor | None
     ) -> torch.Tensor:
-        if labels.device != outputs.device:
-            labels = labels.to(outputs.device, non_blocking=True)
         if not self._checked:
             self.check(outputs, labels)
             self._checked = True
+        if labels.device != outputs.device:
+            labels = labels.to(outputs.device, non_blocking=True)
         if targets is None:
             return self.label_term(outputs, labels)
         if targets.device != outputs.device:

@@ -39,3 +39,26 @@ def metric_name(metric: Metric | None) -> str:
     module = getattr(metric, "__module__", None) or ""
     name = getattr(metric, "__qualname__", None) or type(metric).__qualname__
     return f"{module}:{name}" if module else name
+
+
+class _FloatMetric:
+    """A metric whose result is checked and turned into a Python float (numpy scalars, 0-d
+    tensors), so records stay JSON and the stop rule compares plain numbers."""
+
+    def __init__(self, metric: Metric, name: str) -> None:
+        self.metric = metric
+        self.name = name
+
+    def __call__(self, outputs: torch.Tensor, labels: torch.Tensor) -> float:
+        value = self.metric(outputs, labels)
+        try:
+            return float(value)
+        except (TypeError, ValueError) as exc:
+            raise TypeError(
+                f"metric {self.name} must return a number (higher is better), but returned "
+                f"{type(value).__name__}"
+            ) from exc
+
+
+def as_float_metric(metric: Metric, name: str) -> Metric:
+    return metric if isinstance(metric, _FloatMetric) else _FloatMetric(metric, name)

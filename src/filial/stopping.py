@@ -31,6 +31,8 @@ earlier, cheaper one.
 from __future__ import annotations
 
 import math
+import numbers
+import operator
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from typing import Any
@@ -54,7 +56,22 @@ class Decision:
 
 
 def _finite(value: Any) -> bool:
-    return isinstance(value, (int, float)) and math.isfinite(value)
+    return isinstance(value, numbers.Real) and not isinstance(value, bool) and math.isfinite(value)
+
+
+def as_count(value: Any, name: str, minimum: int = 0) -> int:
+    """``value`` as a Python int >= ``minimum`` (numpy integers welcome, bools not)."""
+    try:
+        if isinstance(value, bool):
+            raise TypeError
+        number = operator.index(value)
+    except TypeError:
+        raise ValueError(
+            f"{name} should be an integer >= {minimum}, but got {name}={value!r}"
+        ) from None
+    if number < minimum:
+        raise ValueError(f"{name} should be an integer >= {minimum}, but got {name}={value!r}")
+    return number
 
 
 class StopRule:
@@ -69,12 +86,14 @@ class StopRule:
         collapse_norm: float = 0.05,
     ) -> None:
         problems = []
-        if not isinstance(max_generations, int) or max_generations < 0:
-            problems.append(
-                f"max_generations should be an integer >= 0, but got {max_generations!r}"
-            )
-        if not isinstance(patience, int) or patience < 1:
-            problems.append(f"patience should be an integer >= 1, but got patience={patience!r}")
+        try:
+            max_generations = as_count(max_generations, "max_generations", minimum=0)
+        except ValueError as exc:
+            problems.append(str(exc))
+        try:
+            patience = as_count(patience, "patience", minimum=1)
+        except ValueError as exc:
+            problems.append(str(exc))
         if not _finite(min_gain) or min_gain < 0:
             problems.append(f"min_gain should be a finite number >= 0, but got {min_gain!r}")
         if not _finite(collapse_share) or not 0 < collapse_share <= 1:
