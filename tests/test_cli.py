@@ -279,3 +279,46 @@ def test_shipped_recipes_run(name, tmp_path):
     done = subprocess.run(command, capture_output=True, text=True, timeout=300)
     assert done.returncode == 0, done.stderr
     assert "kept generation" in done.stdout or "generation 0 was kept" in done.stdout
+
+
+@pytest.mark.slow
+def test_progress_on_a_terminal_is_bars_not_lines(small_recipe, tmp_path):
+    """Under a pseudo-terminal: tqdm bars (carriage returns), no plain generation lines."""
+    import fcntl
+    import pty
+    import struct
+    import termios
+
+    leader, follower = pty.openpty()
+    # A new pseudo-terminal is 0 x 0; give it 24 rows of 100 columns so bars have room.
+    fcntl.ioctl(follower, termios.TIOCSWINSZ, struct.pack("HHHH", 24, 100, 0, 0))
+    command = [
+        sys.executable,
+        "-m",
+        "filial",
+        "run",
+        str(small_recipe),
+        "--run-dir",
+        str(tmp_path / "run"),
+        "--set",
+        "run.seeds=[0]",
+        "--set",
+        "run.baseline='none'",
+    ]
+    process = subprocess.Popen(command, stdin=follower, stdout=subprocess.PIPE, stderr=follower)
+    os.close(follower)
+    chunks = []
+    while True:
+        try:
+            chunk = os.read(leader, 4096)
+        except OSError:  # the terminal closes when the process ends
+            break
+        if not chunk:
+            break
+        chunks.append(chunk)
+    process.wait(timeout=120)
+    os.close(leader)
+    screen = b"".join(chunks).decode(errors="replace")
+    assert process.returncode == 0, screen
+    assert "\r" in screen and "generations" in screen  # the generation bar was drawn
+    assert "filial: generation" not in screen
