@@ -75,6 +75,13 @@ def main() -> int:
             loss.backward()
             opt.step()
 
+    def hook_epoch_generation0() -> None:
+        for inputs, labels, targets in gen0.loader:  # targets is None: the same loss as plain
+            loss = gen0.loss(model(inputs), labels, targets)
+            opt.zero_grad()
+            loss.backward()
+            opt.step()
+
     def teacher_pass() -> None:
         predict(model, train, seed=0)
 
@@ -86,6 +93,9 @@ def main() -> int:
         model.train()
 
     figures = {
+        "generation0_epoch_vs_plain_epoch": _alternate(
+            hook_epoch_generation0, plain_epoch, args.repeats
+        ),
         "student_epoch_vs_plain_epoch": _alternate(hook_epoch, plain_epoch, args.repeats),
         "teacher_pass_vs_plain_inference": _alternate(teacher_pass, plain_inference, args.repeats),
         "teacher_pass_vs_training_epoch": _alternate(teacher_pass, hook_epoch, args.repeats),
