@@ -9,13 +9,18 @@ failure, and :func:`sweep_temporaries` removes those of processes that are no lo
 
 from __future__ import annotations
 
+import errno
 import hashlib
 import json
 import os
 import re
+import socket
+import time
 from collections.abc import Callable
 from pathlib import Path
 from typing import IO, Any
+
+from ._faults import fault_point
 
 _TEMP_RE = re.compile(r"^\..+\.tmp-(\d+)$")
 
@@ -45,8 +50,18 @@ def atomic_write(path: str | os.PathLike[str], write: Callable[[IO[bytes]], None
         with open(tmp, "wb") as handle:
             write(handle)
             handle.flush()
+            fault_point("write", str(path))
             os.fsync(handle.fileno())
         os.replace(tmp, path)
+    except OSError as exc:
+        tmp.unlink(missing_ok=True)
+        if exc.errno == errno.ENOSPC:
+            raise OSError(
+                errno.ENOSPC,
+                f"no space left on the device while writing {path}; nothing was written there "
+                "(the earlier file, if any, is intact). Free some space and rerun to resume",
+            ) from exc
+        raise
     except BaseException:
         tmp.unlink(missing_ok=True)
         raise
@@ -91,3 +106,95 @@ def sweep_temporaries(root: str | os.PathLike[str]) -> list[Path]:
             path.unlink(missing_ok=True)
             removed.append(path)
     return removed
+
+
+class RunLock:
+    """An exclusive lock on a run directory, held while this process works in it.
+
+    The lock file records the holder's pid, host and start time. A second process is refused
+    with the holder named. The operating system drops the lock when its holder dies (``flock``),
+    so a lock file left by a killed process is taken over, with a message saying so. Within one
+    process the lock is shared (a notebook may build a new Lineage over the same directory while
+    the old object is still alive); it is released when its last holder releases it.
+    """
+
+    NAME = ".lock"
+    _held: dict[str, list[int]] = {}  # resolved path -> [descriptor, holders] in this process
+
+    def __init__(self, directory: str | os.PathLike[str]) -> None:
+        self.path = Path(directory) / self.NAME
+        self._key = str(self.path.resolve())
+        self._holding = False
+        self.previous: dict[str, object] | None = None
+
+    def acquire(self) -> RunLock:
+        if self._holding:
+            return self
+        shared = self._held.get(self._key)
+        if shared is not None:
+            shared[1] += 1
+            self._holding = True
+            return self
+        fd = os.open(self.path, os.O_RDWR | os.O_CREAT, 0o644)
+        holder = self._read(fd)
+        try:
+            import fcntl
+        except ImportError:  # pragma: no cover - Windows has no flock: the pid check must do
+            if holder and _alive(int(holder["pid"])) and holder["pid"] != os.getpid():
+                os.close(fd)
+                raise LockedError(self.path.parent, holder) from None
+        else:
+            try:
+                fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+            except BlockingIOError:
+                os.close(fd)
+                raise LockedError(self.path.parent, holder) from None
+        self.previous = holder if holder and holder.get("pid") != os.getpid() else None
+        record = {"pid": os.getpid(), "host": socket.gethostname(), "started": time.time()}
+        os.ftruncate(fd, 0)
+        os.pwrite(fd, json.dumps(record).encode(), 0)
+        self._held[self._key] = [fd, 1]
+        self._holding = True
+        return self
+
+    @staticmethod
+    def _read(fd: int) -> dict[str, object] | None:
+        try:
+            data = os.pread(fd, 4096, 0)
+            holder = json.loads(data) if data else None
+        except (OSError, ValueError):
+            return None
+        return holder if isinstance(holder, dict) and "pid" in holder else None
+
+    def release(self) -> None:
+        if not self._holding:
+            return
+        self._holding = False
+        shared = self._held.get(self._key)
+        if shared is None:
+            return
+        shared[1] -= 1
+        if shared[1] == 0:
+            del self._held[self._key]
+            os.close(shared[0])  # closing the descriptor drops the flock
+
+    def __del__(self) -> None:
+        try:
+            self.release()
+        except Exception:  # interpreter shutdown
+            pass
+
+
+class LockedError(RuntimeError):
+    """Another live process works in this run directory."""
+
+    def __init__(self, directory: Path, holder: dict[str, object] | None) -> None:
+        who = "another process"
+        if holder:
+            started = time.strftime("%Y-%m-%d %H:%M:%S", time.localtime(float(holder["started"])))
+            who = f"process {holder['pid']} on {holder.get('host', '?')} (since {started})"
+        super().__init__(
+            f"{directory} is in use by {who}; wait for it to finish or stop it, or use another "
+            "run directory"
+        )
+        self.holder = holder

@@ -30,9 +30,10 @@ from torch import nn
 from torch.utils.data import DataLoader
 from tqdm.auto import tqdm
 
-from ._io import atomic_write, atomic_write_json, sweep_temporaries
+from ._io import LockedError, RunLock, atomic_write, atomic_write_json, sweep_temporaries
 from .checkpoint import load_checkpoint
 from .data import check_loader, derive_seed, preserved_rng, probe
+from .errors import InputError
 from .generation import HELDOUT_FILE, Generation, Predictions, Setup, predict, write_targets
 from .losses import StudentLoss
 from .metrics import Metric, as_float_metric, default_metric, metric_name
@@ -285,30 +286,52 @@ class Lineage:
     def _open_run_dir(self, fresh: bool) -> None:
         run_dir = self.run_dir
         if run_dir.exists() and not run_dir.is_dir():
-            raise ValueError(f"run_dir {run_dir} exists and is not a directory")
+            raise InputError(f"run_dir {run_dir} exists and is not a directory")
         is_run = self.state_path.is_file()
-        if run_dir.is_dir() and not is_run and any(run_dir.iterdir()):
-            raise ValueError(
+        if run_dir.is_dir() and not is_run and _foreign_entries(run_dir):
+            raise InputError(
                 f"run_dir {run_dir} is not empty and holds no {STATE_FILE}: it is not a filial "
                 "run directory, and filial will not write into it. Choose another run_dir."
             )
-        if fresh and is_run:
-            log.warning("fresh=True: deleting the earlier run in %s", run_dir)
-            shutil.rmtree(run_dir)
-            is_run = False
-        if not is_run:
-            run_dir.mkdir(parents=True, exist_ok=True)
-            self._write_state()
-            return
+        if is_run and not fresh:
+            self._refuse_other_settings(self._read_state())  # before touching anything
+        created = not run_dir.exists()
+        run_dir.mkdir(parents=True, exist_ok=True)
+        self._lock = RunLock(run_dir)
+        try:
+            self._lock.acquire()
+        except LockedError:
+            if created:
+                shutil.rmtree(run_dir, ignore_errors=True)
+            raise
+        if self._lock.previous:
+            log.warning(
+                "took over the lock of %s left by process %s, which is no longer running",
+                run_dir,
+                self._lock.previous.get("pid"),
+            )
+        try:
+            self._resume_or_start(fresh, is_run)
+        except BaseException:
+            self.close()
+            raise
+
+    def _resume_or_start(self, fresh: bool, is_run: bool) -> None:
+        run_dir = self.run_dir
         for path in sweep_temporaries(run_dir):
             log.warning("removed %s, a temporary file left by a process that died", path)
+        if fresh and is_run:
+            log.warning("fresh=True: deleting the earlier run in %s", run_dir)
+            for entry in run_dir.iterdir():  # everything but the lock this process holds
+                if entry.name != RunLock.NAME:
+                    shutil.rmtree(entry) if entry.is_dir() else entry.unlink()
+            is_run = False
+        if not is_run:
+            self._write_state()
+            return
         state = self._read_state()
-        differences = [
-            f"{key}: {state['settings'].get(key)!r} in the run, {value!r} now"
-            for key, value in self.settings.items()
-            if state["settings"].get(key) != value
-        ]
-        if differences and not state["records"]:
+        differences = self._refuse_other_settings(state)
+        if differences:
             log.warning(
                 "%s: no generation had finished, so the new settings replace the old (%s)",
                 run_dir,
@@ -316,16 +339,35 @@ class Lineage:
             )
             self._write_state()
             return
-        if differences:
-            raise ValueError(
-                f"{run_dir} holds a run made with other settings, so it cannot be resumed:\n  "
-                + "\n  ".join(differences)
-                + "\nUse the run's settings, another run_dir, or fresh=True to start over."
-            )
         self._records = list(state["records"])
         self._decision = state.get("decision")
         if self._records:
             self._say(f"resuming {run_dir} after generation {self._records[-1]['generation']}")
+
+    def _refuse_other_settings(self, state: dict[str, Any]) -> list[str]:
+        """Raise if ``state`` has finished generations under other settings; else return the
+        differences (which may then replace the old settings)."""
+        differences = [
+            f"{key}: {state['settings'].get(key)!r} in the run, {value!r} now"
+            for key, value in self.settings.items()
+            if state["settings"].get(key) != value
+        ]
+        if differences and state["records"]:
+            raise InputError(
+                f"{self.run_dir} holds a run made with other settings, so it cannot be "
+                "resumed:\n  "
+                + "\n  ".join(differences)
+                + "\nUse the run's settings, another run_dir, or fresh=True to start over."
+            )
+        return differences
+
+    def close(self) -> None:
+        """Release the run directory's lock (also released when the object or process ends)."""
+        lock = getattr(self, "_lock", None)
+        if lock is not None:
+            lock.release()
+        if self.tensorboard is not None:
+            self.tensorboard.close()
 
     def _session_settings(self) -> dict[str, Any]:
         keys = ("seed", "targets", "temperature", "label_weight", "max_generations", "patience")
@@ -606,6 +648,11 @@ class Lineage:
             )
         )
         return record
+
+
+def _foreign_entries(directory: Path) -> list[Path]:
+    """Entries of ``directory`` that filial did not put there (its lock file does not count)."""
+    return [p for p in directory.iterdir() if p.name != RunLock.NAME]
 
 
 def _fmt(value: Any) -> str:
