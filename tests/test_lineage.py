@@ -14,6 +14,7 @@ from torch.utils.data import DataLoader, TensorDataset
 
 import filial
 from filial.checkpoint import load_checkpoint
+from filial.errors import InputError
 
 
 def _hook(lineage, epochs=2, lr=0.1, stop_after=None, poison=None):
@@ -96,7 +97,10 @@ def test_generations_get_different_inits_and_runs_repeat(loaders, tmp_path):
             model_fn, train, heldout, run_dir=tmp_path / name, max_generations=2, patience=5
         )
         _hook(lineage)
-    a, b = inits[:3], inits[3:]
+    # Each Lineage builds one probe model at construction (checked on a few samples), then one
+    # model per generation.
+    assert len(inits) == 8
+    a, b = inits[1:4], inits[5:8]
     assert not torch.equal(a[0], a[1]) and not torch.equal(a[1], a[2])
     assert all(torch.equal(x, y) for x, y in zip(a, b, strict=True))
     for g in range(3):
@@ -223,9 +227,14 @@ def test_labels_outside_the_output_range_are_named(tmp_path):
     data = blobs(40, classes=5)
     train = DataLoader(data, batch_size=8)
     heldout = DataLoader(blobs(20, classes=5, seed=4), batch_size=8)
-    lineage = filial.Lineage(TinyNet(classes=3), train, heldout, run_dir=tmp_path / "run")
-    with pytest.raises(ValueError, match=r"labels range over \[0, 4\] but the model has 3 outputs"):
-        _hook(lineage)
+    # Found on the probe samples at construction, before the run directory exists.
+    with pytest.raises(InputError, match=r"labels range over \[0, 4\] but the model has 3 outputs"):
+        filial.Lineage(TinyNet(classes=3), train, heldout, run_dir=tmp_path / "run")
+    assert not (tmp_path / "run").exists()
+    # A label the probe did not see is still named at the first batch that holds it.
+    loss = filial.losses.StudentLoss("ce")
+    with pytest.raises(InputError, match="class labels must lie in"):
+        loss(torch.zeros(2, 3), torch.tensor([0, 7]), None)
 
 
 def test_bad_arguments_are_reported_together_and_write_nothing(loaders, tmp_path):

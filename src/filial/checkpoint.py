@@ -15,9 +15,10 @@ import torch
 from torch import nn
 
 from ._io import atomic_write, sha256_file
+from .errors import InputError
 
 
-class CheckpointError(ValueError):
+class CheckpointError(InputError):
     """A checkpoint is missing, damaged, or not the file that was recorded."""
 
 

@@ -32,8 +32,9 @@ from torch.utils.data import DataLoader
 from tqdm.auto import tqdm
 
 from . import recipe as recipes
-from ._io import atomic_write
+from ._io import LockedError, RunLock, atomic_write, sweep_temporaries
 from .data import check_loader
+from .errors import InputError
 from .fit import fit_epochs
 from .lineage import Lineage
 from .losses import StudentLoss
@@ -120,35 +121,54 @@ def plan(recipe_path: str, overrides: Sequence[str], run_dir: str | None) -> Pla
     return Plan(recipe, train, heldout, test, model_fn)
 
 
-def _prepare_run_dir(recipe: recipes.Recipe, fresh: bool) -> tuple[Path, bool]:
-    """Check (or clear, with ``fresh``) the run directory; return it and whether it is new."""
+def _prepare_run_dir(recipe: recipes.Recipe, fresh: bool) -> tuple[Path, bool, RunLock]:
+    """Check, lock and (with ``fresh``) clear the run directory; save the recipe in it.
+
+    Returns the directory, whether this call created it, and the lock held on it.
+    """
     run_dir = Path(recipe["run"]["run_dir"])
     saved = run_dir / RECIPE_FILE
     if run_dir.exists() and not run_dir.is_dir():
         raise recipes.RecipeError(f"run_dir {run_dir} exists and is not a directory")
-    if run_dir.is_dir() and any(run_dir.iterdir()):
-        if not saved.is_file():
+    foreign = run_dir.is_dir() and any(p.name != RunLock.NAME for p in run_dir.iterdir())
+    if foreign and not saved.is_file():
+        raise recipes.RecipeError(
+            f"{run_dir} is not empty and holds no {RECIPE_FILE}: it is not a filial run "
+            "directory. Choose another one with --run-dir."
+        )
+    if foreign and not fresh:
+        old = recipes.Recipe(tomllib.loads(saved.read_text(encoding="utf-8"))).comparable()
+        changed = recipes.differences(old, recipe.comparable())
+        if changed:
             raise recipes.RecipeError(
-                f"{run_dir} is not empty and holds no {RECIPE_FILE}: it is not a filial run "
-                "directory. Choose another one with --run-dir."
+                f"{run_dir} holds a run of another recipe, so it cannot be resumed:\n  "
+                + "\n  ".join(changed)
+                + "\nUse --fresh to start over there, or another --run-dir."
             )
-        if fresh:
-            shutil.rmtree(run_dir)
-        else:
-            old = recipes.Recipe(tomllib.loads(saved.read_text(encoding="utf-8"))).comparable()
-            changed = recipes.differences(old, recipe.comparable())
-            if changed:
-                raise recipes.RecipeError(
-                    f"{run_dir} holds a run of another recipe, so it cannot be resumed:\n  "
-                    + "\n  ".join(changed)
-                    + "\nUse --fresh to start over there, or another --run-dir."
-                )
-            return run_dir, False
     new = not run_dir.exists()
     run_dir.mkdir(parents=True, exist_ok=True)
-    text = recipe.to_toml()
-    atomic_write(saved, lambda handle: handle.write(text.encode("utf-8")))
-    return run_dir, new
+    try:
+        lock = RunLock(run_dir).acquire()
+    except LockedError:
+        if new:
+            shutil.rmtree(run_dir, ignore_errors=True)
+        raise
+    if lock.previous:
+        print(
+            f"filial: took over the lock of {run_dir} left by process "
+            f"{lock.previous.get('pid')}, which is no longer running",
+            file=sys.stderr,
+        )
+    for path in sweep_temporaries(run_dir):
+        print(f"filial: removed {path}, left by a process that died", file=sys.stderr)
+    if fresh:
+        for entry in run_dir.iterdir():  # all but the lock this process now holds
+            if entry.name != RunLock.NAME:
+                shutil.rmtree(entry) if entry.is_dir() else entry.unlink()
+    if not saved.is_file():
+        text = recipe.to_toml()
+        atomic_write(saved, lambda handle: handle.write(text.encode("utf-8")))
+    return run_dir, new, lock
 
 
 def _lineage(p: Plan, run_dir: Path, seed: int, quiet: bool) -> Lineage:
@@ -217,19 +237,29 @@ def _resume_command(argv: Sequence[str]) -> str:
 
 def _run(args: argparse.Namespace, argv: Sequence[str]) -> int:
     created: Path | None = None
+    lock: RunLock | None = None
     on_terminal = sys.stderr.isatty()
     try:
         p = plan(args.recipe, args.set, args.run_dir)
-        run_dir, new = _prepare_run_dir(p.recipe, args.fresh)
+        run_dir, new, lock = _prepare_run_dir(p.recipe, args.fresh)
         created = run_dir if new else None
         lineages = [_lineage(p, run_dir, s, quiet=on_terminal) for s in p.recipe["run"]["seeds"]]
-    except (recipes.RecipeError, ValueError, TypeError) as exc:
+    except (recipes.RecipeError, InputError, LockedError, ValueError, TypeError) as exc:
+        if lock is not None:
+            lock.release()
         if created is not None:
             shutil.rmtree(created, ignore_errors=True)
         print(f"filial: {exc}", file=sys.stderr)
         return EXIT_USAGE
     try:
         _train(p, run_dir, lineages, on_terminal)
+    except InputError as exc:  # found while running (e.g. a model whose width changes)
+        print(
+            f"\nfilial: {exc}\nFinished generations are kept in {run_dir}; fix the input and "
+            f"rerun\n  {_resume_command(argv)}",
+            file=sys.stderr,
+        )
+        return EXIT_USAGE
     except KeyboardInterrupt:
         print(
             f"\nfilial: interrupted. {run_dir} keeps every finished generation; resume with:\n"
@@ -246,6 +276,10 @@ def _run(args: argparse.Namespace, argv: Sequence[str]) -> int:
             file=sys.stderr,
         )
         return EXIT_FAILED
+    finally:
+        for lineage in lineages:
+            lineage.close()
+        lock.release()
     print(format_report(summarize(run_dir)))
     return EXIT_OK
 

@@ -29,6 +29,7 @@ import numpy as np
 import torch
 from torch.utils.data import DataLoader, Dataset, IterableDataset
 
+from .errors import InputError
 from .store import TargetStore
 
 _LOADER_PARAMS = set(inspect.signature(DataLoader.__init__).parameters)
@@ -43,7 +44,7 @@ def derive_seed(*parts: int) -> int:
     return int(np.random.SeedSequence([int(p) for p in parts]).generate_state(1)[0] >> 1)
 
 
-class LoaderContractError(TypeError):
+class LoaderContractError(InputError, TypeError):
     """The user's loader or its batches do not fit what filial needs."""
 
 
@@ -265,7 +266,8 @@ class Probe:
     """What a few spread-out samples of a loader's dataset tell before any training."""
 
     fingerprint: str
-    labels: Any  # the probe samples' labels, collated by the user's collate_fn
+    inputs: Any  # the probe samples' inputs and labels, collated by the user's collate_fn
+    labels: Any
     deterministic: bool  # the same index gave the same inputs twice
 
 
@@ -298,7 +300,7 @@ def probe(loader: DataLoader, probes: int = 64) -> Probe:
     _tensor_bytes(labels, digest)
     if deterministic:
         digest.update(first_digest.digest())
-    return Probe(digest.hexdigest(), labels, deterministic)
+    return Probe(digest.hexdigest(), inputs, labels, deterministic)
 
 
 def fingerprint(loader: DataLoader, probes: int = 64) -> str:

@@ -23,6 +23,7 @@ import torch.nn.functional as F
 from torch import nn
 from torch.utils.data import DataLoader
 
+from ._faults import fault_point
 from ._io import atomic_write
 from .checkpoint import save_checkpoint, unwrap
 from .data import derive_seed, preserved_rng, sequential_loader, training_loader
@@ -78,7 +79,9 @@ def model_device(model: nn.Module) -> torch.device:
     return torch.device("cpu")
 
 
-def predict(model: nn.Module, loader: DataLoader, seed: int) -> Predictions:
+def predict(
+    model: nn.Module, loader: DataLoader, seed: int, fault: str | None = None
+) -> Predictions:
     """Outputs of ``model`` (in eval mode, restored afterwards) over ``loader``'s whole dataset.
 
     The batches come in index order, so each one fills the next rows of a buffer kept on the
@@ -97,6 +100,8 @@ def predict(model: nn.Module, loader: DataLoader, seed: int) -> Predictions:
         # when the loader has no workers; the evaluation must not move the user's streams.
         with preserved_rng(), torch.inference_mode():
             for indices, inputs, batch_labels in sequential_loader(loader, seed):
+                if fault is not None:
+                    fault_point("teacher", fault)
                 out = module(move_to(inputs, device))
                 if not isinstance(out, torch.Tensor) or out.ndim != 2 or len(out) != len(indices):
                     shape = tuple(out.shape) if isinstance(out, torch.Tensor) else type(out)
@@ -128,6 +133,19 @@ def predict(model: nn.Module, loader: DataLoader, seed: int) -> Predictions:
     if outputs is None or labels is None or filled != size:
         raise RuntimeError(f"the evaluation pass covered {filled} of {size} samples")
     return Predictions(outputs.cpu(), labels)
+
+
+def probe_outputs(model: nn.Module, inputs: Any) -> torch.Tensor:
+    """The model's outputs on a few probe inputs: eval mode (restored), no gradients, and the
+    caller's random streams untouched (dropout would draw from them)."""
+    module = unwrap(model)
+    was_training = module.training
+    module.eval()
+    try:
+        with preserved_rng(), torch.inference_mode():
+            return module(move_to(inputs, model_device(module)))
+    finally:
+        module.train(was_training)
 
 
 def _entropy(outputs: torch.Tensor, temperature: float) -> float:
@@ -217,7 +235,7 @@ class Generation:
             raise TypeError(f"finish() needs the trained nn.Module, but got {type(model).__name__}")
         setup = self._setup
         seed = derive_seed(setup.seed, self.index, 1)
-        train = predict(model, setup.train_loader, seed)
+        train = predict(model, setup.train_loader, seed, fault=f"gen{self.index}")
         heldout = predict(model, setup.heldout_loader, seed)
         test = predict(model, setup.test_loader, seed) if setup.test_loader is not None else None
         metric = setup.metric

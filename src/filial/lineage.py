@@ -34,7 +34,15 @@ from ._io import LockedError, RunLock, atomic_write, atomic_write_json, sweep_te
 from .checkpoint import load_checkpoint
 from .data import check_loader, derive_seed, preserved_rng, probe
 from .errors import InputError
-from .generation import HELDOUT_FILE, Generation, Predictions, Setup, predict, write_targets
+from .generation import (
+    HELDOUT_FILE,
+    Generation,
+    Predictions,
+    Setup,
+    predict,
+    probe_outputs,
+    write_targets,
+)
 from .losses import StudentLoss
 from .metrics import Metric, as_float_metric, default_metric, metric_name
 from .stopping import StopRule, as_count
@@ -229,6 +237,8 @@ class Lineage:
         assert loss is not None and rule is not None and seed is not None and views is not None
         assert train_probe is not None and heldout_probe is not None
 
+        self._probe = train_probe
+        self._width = self._check_model(model_fn, loss)
         self.model_fn = model_fn
         self.run_dir = Path(run_dir)
         self.progress = bool(progress)
@@ -516,24 +526,43 @@ class Lineage:
         self._seed_generation(index)
         model = self.model_fn()
         if not isinstance(model, nn.Module):
-            raise TypeError(
+            raise InputError(
                 f"model_fn must return an nn.Module, but returned {type(model).__name__}"
             )
         previous = self._previous_model() if self._previous_model is not None else None
         if previous is not None:
             if previous is model:
-                raise ValueError(
+                raise InputError(
                     "model_fn returned the same module object as for the previous generation; it "
                     "must build a new, freshly initialised module on every call"
                 )
             shared = {id(p) for p in previous.parameters()} & {id(p) for p in model.parameters()}
             if shared:
-                raise ValueError(
+                raise InputError(
                     f"model_fn returned a module sharing {len(shared)} parameter tensors with the "
                     "previous generation's; every generation needs its own parameters"
                 )
+        width = probe_outputs(model, self._probe.inputs).shape[1]
+        if width != self._width:
+            raise InputError(
+                f"generation {index}'s model has {width} outputs, but the lineage's models have "
+                f"{self._width}: model_fn must build the same architecture every generation"
+            )
         self._previous_model = weakref.ref(model)
         return Generation(index, model, self._setup, teacher, store, self._record)
+
+    def _check_model(self, model_fn: Callable[[], nn.Module], loss: StudentLoss) -> int:
+        """Build one model and run it on the probe samples: its output width, and labels that
+        fit it, are checked before any run directory is touched."""
+        with preserved_rng():
+            model = model_fn()
+        if not isinstance(model, nn.Module):
+            raise InputError(
+                f"model_fn must return an nn.Module, but returned {type(model).__name__}"
+            )
+        outputs = probe_outputs(model, self._probe.inputs)
+        loss.check(outputs, torch.as_tensor(self._probe.labels))
+        return int(outputs.shape[1])
 
     def _seed_generation(self, index: int) -> None:
         """Seed every random stream the generation draws from, from ``(seed, index)``.

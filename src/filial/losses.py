@@ -28,6 +28,8 @@ import numbers
 import torch
 import torch.nn.functional as F
 
+from .errors import InputError
+
 LOSS_KINDS = ("ce", "l2")
 
 
@@ -88,37 +90,37 @@ class StudentLoss:
         """Raise a clear error when labels and outputs cannot go together."""
         if not isinstance(outputs, torch.Tensor) or outputs.ndim != 2:
             shape = tuple(outputs.shape) if isinstance(outputs, torch.Tensor) else type(outputs)
-            raise ValueError(
+            raise InputError(
                 f"the model must return a tensor of shape (batch, outputs), but returned {shape}"
             )
         if not isinstance(labels, torch.Tensor):
-            raise TypeError(f"labels must be a tensor, but the batch held {type(labels).__name__}")
+            raise InputError(f"labels must be a tensor, but the batch held {type(labels).__name__}")
         if labels.shape[0] != outputs.shape[0]:
-            raise ValueError(
+            raise InputError(
                 f"the batch has {labels.shape[0]} labels but the model returned "
                 f"{outputs.shape[0]} rows"
             )
         width = outputs.shape[1]
         if _is_integer(labels):
             if labels.ndim != 1:
-                raise ValueError(
+                raise InputError(
                     f"integer labels must have shape (batch,), but got {tuple(labels.shape)}"
                 )
             if labels.numel():
                 low, high = int(labels.min()), int(labels.max())
                 if low < 0 or high >= width:
-                    raise ValueError(
+                    raise InputError(
                         f"labels range over [{low}, {high}] but the model has {width} outputs: "
                         f"class labels must lie in [0, {width - 1}]. Widen the model's last "
                         "layer or relabel the classes from 0."
                     )
         elif self.kind == "ce":
-            raise ValueError(
+            raise InputError(
                 "targets='ce' needs integer class labels, but the labels are floating point. "
                 "Use targets='l2' for regression."
             )
         elif labels.numel() != outputs.numel():
-            raise ValueError(
+            raise InputError(
                 f"regression labels of shape {tuple(labels.shape)} do not match outputs of shape "
                 f"{tuple(outputs.shape)}"
             )
@@ -148,7 +150,7 @@ class StudentLoss:
         if targets.device != outputs.device:
             targets = targets.to(outputs.device, non_blocking=True)
         if targets.shape != outputs.shape:
-            raise ValueError(
+            raise InputError(
                 f"the model returned outputs of shape {tuple(outputs.shape)} but the teacher's "
                 f"targets have shape {tuple(targets.shape)}: every generation must have the same "
                 "output width"

@@ -41,6 +41,7 @@ import importlib
 import inspect
 import math
 import os
+import re
 import tomllib
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
@@ -93,6 +94,7 @@ _SCHEMA: dict[str, dict[str, Field]] = {
     },
 }
 _FACTORY_SECTIONS = ("data", "model")
+_NAME = re.compile(r"[A-Za-z0-9][A-Za-z0-9._-]*")
 SECTIONS = ("run", "data", "model", "training", "generations")
 
 
@@ -284,8 +286,12 @@ def resolve(raw: dict[str, Any], overrides: Sequence[str] = (), source: Path | N
             f"training.momentum applies to optimizer = 'sgd' only, but optimizer = "
             f"{training['optimizer']!r}; remove training.momentum"
         )
-    if not values["run"]["name"]:
-        raise RecipeError("run.name should not be empty")
+    if not _NAME.fullmatch(values["run"]["name"]):
+        raise RecipeError(
+            f"run.name should be a plain name (letters, digits, '.', '_', '-'; no path), but got "
+            f"{values['run']['name']!r}: it becomes a folder under runs/. Set run.run_dir for a "
+            "path."
+        )
     if not values["run"]["run_dir"]:
         values["run"]["run_dir"] = os.path.join("runs", values["run"]["name"])
     return Recipe(values, source)

@@ -30,13 +30,14 @@ from typing import Any
 import numpy as np
 
 from ._io import atomic_write, atomic_write_json, sha256_file
+from .errors import InputError
 
 FORMAT = "filial.targets/1"
 STORE_DTYPES = ("float16", "float32")
 _FLOAT16_MAX = float(np.finfo(np.float16).max)
 
 
-class StoreError(ValueError):
+class StoreError(InputError):
     """A target store is missing, incomplete, damaged, or belongs to other data."""
 
 
