@@ -85,7 +85,8 @@ class _Writer:
         writer = self.cache.get(self.folder) if self.cache is not None else None
         if writer is None:
             self.folder.mkdir(parents=True, exist_ok=True)
-            writer = SummaryWriter(log_dir=os.fspath(self.folder))
+            # A deep queue: add_scalar never waits for the writer thread (max_queue=10 did).
+            writer = SummaryWriter(log_dir=os.fspath(self.folder), max_queue=10_000)
             if self.cache is not None:
                 self.cache[self.folder] = writer
         self.writer = writer

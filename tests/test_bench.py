@@ -1,0 +1,37 @@
+"""scripts/bench runs in its quick mode and writes well-formed JSON (no timing is asserted)."""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+@pytest.mark.slow
+def test_bench_quick_mode_writes_its_table(tmp_path):
+    out = tmp_path / "bench.json"
+    done = subprocess.run(
+        [sys.executable, str(ROOT / "scripts" / "bench.py"), "--quick", "--out", str(out)],
+        capture_output=True,
+        text=True,
+        timeout=600,
+    )
+    assert done.returncode == 0, done.stderr
+    report = json.loads(out.read_text())
+    assert report["quick"] is True and report["cores"] >= 1
+    names = [row["figure"] for row in report["table"]]
+    assert len(names) == 9 and len(set(names)) == 9
+    for row in report["table"]:
+        assert isinstance(row["value"], float) and row["value"] > 0
+        assert isinstance(row["met"], bool) and row["goal"].split()[0] in ("<=", ">=", "<")
+    for key in ("student_epoch_digits_mlp", "student_epoch_cnn_32x32"):
+        for side in ("generation0", "student"):
+            figure = report["figures"][key][side]
+            assert figure["ratio_min"] <= figure["ratio_median"] <= figure["ratio_max"]
+    assert report["figures"]["compact_store"]["available"] is False
+    assert "figure" in done.stdout and "wrote" in done.stdout
