@@ -322,3 +322,63 @@ def test_progress_on_a_terminal_is_bars_not_lines(small_recipe, tmp_path):
     assert process.returncode == 0, screen
     assert "\r" in screen and "generations" in screen  # the generation bar was drawn
     assert "filial: generation" not in screen
+
+
+def test_fresh_never_deletes_a_folder_filial_did_not_make(small_recipe, tmp_path, capsys):
+    folder = tmp_path / "project"
+    folder.mkdir()
+    (folder / "recipe.toml").write_text('[tool]\nname = "cake"\n')  # someone else's recipe
+    (folder / "notes.txt").write_text("keep me")
+    assert cli.main(["run", str(small_recipe), "--run-dir", str(folder), "--fresh"]) == 2
+    assert "not a filial run directory" in capsys.readouterr().err
+    assert sorted(p.name for p in folder.iterdir()) == ["notes.txt", "recipe.toml"]
+
+
+@pytest.mark.slow
+def test_a_refused_fresh_run_leaves_the_earlier_run_as_it_was(small_recipe, tmp_path, capsys):
+    run_dir = tmp_path / "run"
+    args = [
+        "run",
+        str(small_recipe),
+        "--run-dir",
+        str(run_dir),
+        "--set",
+        "run.seeds=[0]",
+        "--set",
+        "run.baseline='none'",
+        "--set",
+        "generations.max=1",
+    ]
+    assert cli.main(args) == 0
+    before = {p: p.read_bytes() for p in run_dir.rglob("*") if p.is_file() and p.name != ".lock"}
+    capsys.readouterr()
+    assert (
+        cli.main([*args, "--fresh", "--set", "model.hidden=[]", "--set", "model.inputs=32"]) == 2
+    )  # the model cannot take the data's 64 features
+    assert "fails on a batch of the training data" in capsys.readouterr().err
+    after = {p: p.read_bytes() for p in run_dir.rglob("*") if p.is_file() and p.name != ".lock"}
+    assert after == before
+    assert cli.main(args) == 0  # a clean rerun: no "took over" message
+    assert "took over the lock" not in capsys.readouterr().err
+
+
+def test_a_model_that_cannot_run_on_the_data_exits_2_and_leaves_nothing(
+    small_recipe, tmp_path, capsys
+):
+    run_dir = tmp_path / "run"
+    argv = ["run", str(small_recipe), "--run-dir", str(run_dir), "--set", "model.inputs=32"]
+    assert cli.main(argv) == 2
+    assert "mat1 and mat2" in capsys.readouterr().err
+    assert not run_dir.exists()
+
+
+def test_saved_recipes_read_back_unchanged():
+    recipe = resolve(tomllib.loads(SMALL), ['data.note="two\\nlines \\"quoted\\" ü"'])
+    text = recipe.to_toml()
+    assert text.startswith("# filial run recipe")
+    assert tomllib.loads(text) == recipe.values
+    odd = tomllib.loads(SMALL)
+    odd["data"]["options"] = {"a.b": 1, "with space": [1.5, True]}
+    assert tomllib.loads(resolve(odd).to_toml()) == resolve(odd).values
+    with pytest.raises(RecipeError, match="date"):
+        resolve(tomllib.loads(SMALL), ["data.when=1979-05-27"])

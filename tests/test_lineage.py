@@ -430,3 +430,12 @@ def test_model_and_loaders_on_the_gpu(tmp_path):
     assert [r["generation"] for r in result.records] == [0, 1]
     assert all(isinstance(r["heldout"], float) for r in result.records)
     assert not next(result.best_model().parameters()).is_cuda  # checkpoints load on the CPU
+
+
+def test_fresh_deletes_only_what_a_lineage_writes(loaders, tmp_path):
+    run = tmp_path / "run"
+    _hook(_lineage(loaders, run, max_generations=1))
+    (run / "notes.txt").write_text("mine")
+    lineage = _lineage(loaders, run, max_generations=1, fresh=True)
+    assert lineage.result.records == []
+    assert sorted(p.name for p in run.iterdir()) == [".lock", "lineage.json", "notes.txt"]

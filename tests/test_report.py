@@ -89,3 +89,23 @@ def test_report_of_a_plain_lineage(loaders, tmp_path):
     assert "stopped: max-generations" in text and "<- kept" in text
     with pytest.raises(ValueError, match="not a filial run directory"):
         summarize(tmp_path)
+
+
+def test_report_says_when_the_matched_baseline_diverged(loaders, tmp_path):
+    import json
+
+    train, heldout, _ = loaders
+    lineage = filial.Lineage(TinyNet(), train, heldout, run_dir=tmp_path / "run", max_generations=1)
+    lineage.run(filial.fit_epochs(1, lambda p: torch.optim.SGD(p, lr=0.1)))
+    base = lineage.matched_baseline(
+        lambda n: filial.fit_epochs(n, lambda p: torch.optim.SGD(p, lr=0.1))
+    )
+    assert (
+        base["epochs_matched"] == 2
+        and not (tmp_path / "run" / "baseline" / "gen0" / "targets.npy").exists()
+    )
+    path = tmp_path / "run" / "baseline" / "baseline.json"
+    path.write_text(json.dumps({**base, "heldout": None, "diverged": True}))
+    assert "matched baseline (2 epochs on the labels): diverged" in format_report(
+        summarize(tmp_path / "run")
+    )

@@ -176,7 +176,10 @@ class RunLock:
         shared[1] -= 1
         if shared[1] == 0:
             del self._held[self._key]
-            os.close(shared[0])  # closing the descriptor drops the flock
+            try:
+                os.ftruncate(shared[0], 0)  # a clean exit leaves no holder to "take over"
+            finally:
+                os.close(shared[0])  # closing the descriptor drops the flock
 
     def __del__(self) -> None:
         try:

@@ -7,9 +7,11 @@
 ``filial report RUN_DIR [--json]``
     prints what a run found.
 
-Exit codes: 0 success; 2 a bad recipe or bad arguments (the message names the key and what was
-expected, and no run directory is left behind); 1 a failure during the run (finished generations
-are kept); 130 interrupted (the run directory is resumable, and the message says how).
+Exit codes: 0 success; 2 a bad recipe, bad arguments or bad input, or a run directory in use by
+another process (the message names the key or the problem; a run directory this call created is
+removed, and finished generations of an earlier run are kept as they were); 1 a failure during
+the run (finished generations are kept); 130 interrupted (the run directory is resumable, and
+the message says how).
 """
 
 from __future__ import annotations
@@ -38,7 +40,7 @@ from .errors import InputError
 from .fit import fit_epochs
 from .lineage import Lineage
 from .losses import StudentLoss
-from .report import RECIPE_FILE, format_report, summarize
+from .report import RECIPE_FILE, format_report, spread, summarize
 from .stopping import StopRule
 from .tb import seeds_spread
 
@@ -122,22 +124,27 @@ def plan(recipe_path: str, overrides: Sequence[str], run_dir: str | None) -> Pla
 
 
 def _prepare_run_dir(recipe: recipes.Recipe, fresh: bool) -> tuple[Path, bool, RunLock]:
-    """Check, lock and (with ``fresh``) clear the run directory; save the recipe in it.
+    """Check and lock the run directory; nothing in it is changed here.
 
-    Returns the directory, whether this call created it, and the lock held on it.
+    Returns the directory, whether this call created it, and the lock held on it. A folder that
+    is neither empty nor a filial run (its ``recipe.toml`` starts with filial's marker) is
+    refused, with or without ``--fresh``.
     """
     run_dir = Path(recipe["run"]["run_dir"])
     saved = run_dir / RECIPE_FILE
     if run_dir.exists() and not run_dir.is_dir():
         raise recipes.RecipeError(f"run_dir {run_dir} exists and is not a directory")
-    foreign = run_dir.is_dir() and any(p.name != RunLock.NAME for p in run_dir.iterdir())
-    if foreign and not saved.is_file():
+    used = run_dir.is_dir() and any(p.name != RunLock.NAME for p in run_dir.iterdir())
+    if used and not recipes.is_saved_recipe(saved):
         raise recipes.RecipeError(
-            f"{run_dir} is not empty and holds no {RECIPE_FILE}: it is not a filial run "
-            "directory. Choose another one with --run-dir."
+            f"{run_dir} is not empty and is not a filial run directory (no {RECIPE_FILE} "
+            "written by filial run). Choose another one with --run-dir."
         )
-    if foreign and not fresh:
-        old = recipes.Recipe(tomllib.loads(saved.read_text(encoding="utf-8"))).comparable()
+    if used and not fresh:
+        try:
+            old = recipes.Recipe(tomllib.loads(saved.read_text(encoding="utf-8"))).comparable()
+        except (OSError, ValueError, KeyError) as exc:
+            raise recipes.RecipeError(f"{saved} cannot be read ({exc})") from exc
         changed = recipes.differences(old, recipe.comparable())
         if changed:
             raise recipes.RecipeError(
@@ -161,17 +168,25 @@ def _prepare_run_dir(recipe: recipes.Recipe, fresh: bool) -> tuple[Path, bool, R
         )
     for path in sweep_temporaries(run_dir):
         print(f"filial: removed {path}, left by a process that died", file=sys.stderr)
-    if fresh:
-        for entry in run_dir.iterdir():  # all but the lock this process now holds
-            if entry.name != RunLock.NAME:
-                shutil.rmtree(entry) if entry.is_dir() else entry.unlink()
-    if not saved.is_file():
-        text = recipe.to_toml()
-        atomic_write(saved, lambda handle: handle.write(text.encode("utf-8")))
     return run_dir, new, lock
 
 
-def _lineage(p: Plan, run_dir: Path, seed: int, quiet: bool) -> Lineage:
+def _start_over(run_dir: Path, seeds: Sequence[int]) -> None:
+    """``--fresh``, once every check has passed: remove the earlier run's TensorBoard runs and
+    the lineages of seeds the recipe no longer has (each kept seed's lineage cleared itself)."""
+    shutil.rmtree(run_dir / "tb", ignore_errors=True)
+    for entry in run_dir.glob("seed*"):
+        stale = entry.name not in {f"seed{s}" for s in seeds}
+        if stale and entry.is_dir() and (entry / "lineage.json").is_file():
+            shutil.rmtree(entry)
+
+
+def _save_recipe(recipe: recipes.Recipe, run_dir: Path) -> None:
+    text = recipe.to_toml()
+    atomic_write(run_dir / RECIPE_FILE, lambda handle: handle.write(text.encode("utf-8")))
+
+
+def _lineage(p: Plan, run_dir: Path, seed: int, quiet: bool, fresh: bool = False) -> Lineage:
     g = p.recipe["generations"]
     return Lineage(
         p.model_fn,
@@ -190,6 +205,7 @@ def _lineage(p: Plan, run_dir: Path, seed: int, quiet: bool) -> Lineage:
         seed=seed,
         progress=not quiet,
         tensorboard=run_dir / "tb" / f"seed{seed}",
+        fresh=fresh,
     )
 
 
@@ -220,14 +236,18 @@ def _train(p: Plan, run_dir: Path, lineages: list[Lineage], on_terminal: bool) -
             bar.update(1)
             bar.set_postfix(heldout=f"{record['heldout'] or float('nan'):.4f}", refresh=True)
         bar.close()
-        if p.recipe["run"]["baseline"] == "matched":
+        if p.recipe["run"]["baseline"] == "matched" and lineage.result.best is not None:
             lineage.matched_baseline(make_fit)
     if len(lineages) > 1:
         depth = max(len(x.result.records) for x in lineages)
-        rows = summarize(run_dir)["generations"][:depth]
-        seeds_spread(
-            run_dir / "tb", [r["heldout_mean"] for r in rows], [r["heldout_std"] for r in rows]
-        )
+        means, stds = [], []
+        for g in range(depth):
+            mean, std = spread(
+                [x.result.records[g]["heldout"] for x in lineages if len(x.result.records) > g]
+            )
+            means.append(mean)
+            stds.append(std)
+        seeds_spread(run_dir / "tb", means, stds)
 
 
 def _resume_command(argv: Sequence[str]) -> str:
@@ -243,7 +263,14 @@ def _run(args: argparse.Namespace, argv: Sequence[str]) -> int:
         p = plan(args.recipe, args.set, args.run_dir)
         run_dir, new, lock = _prepare_run_dir(p.recipe, args.fresh)
         created = run_dir if new else None
-        lineages = [_lineage(p, run_dir, s, quiet=on_terminal) for s in p.recipe["run"]["seeds"]]
+        seeds = p.recipe["run"]["seeds"]
+        # Each Lineage checks the data and the model before it touches its folder (and, with
+        # --fresh, clears it); the rest of an earlier run goes only after all of them passed.
+        lineages = [_lineage(p, run_dir, s, quiet=on_terminal, fresh=args.fresh) for s in seeds]
+        if args.fresh:
+            _start_over(run_dir, seeds)
+        if args.fresh or not (run_dir / RECIPE_FILE).is_file():
+            _save_recipe(p.recipe, run_dir)
     except (recipes.RecipeError, InputError, LockedError, ValueError, TypeError) as exc:
         if lock is not None:
             lock.release()

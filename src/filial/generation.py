@@ -49,6 +49,7 @@ class Setup:
     views: int
     fingerprint: str
     seed: int
+    write_targets: bool = True  # False for a model nobody distils from (the matched baseline)
 
 
 @dataclass
@@ -269,7 +270,7 @@ class Generation:
             # An earlier attempt at this generation may have left a store; it is never a teacher.
             for name in (TargetStore.MANIFEST, TargetStore.ARRAY):
                 (self.directory / name).unlink(missing_ok=True)
-        else:
+        elif setup.write_targets:
             write_targets(setup, self.directory, train.outputs, teacher_sha)
         record["checkpoint"] = f"gen{self.index}/{CHECKPOINT_FILE}"
         record["checkpoint_sha256"] = teacher_sha

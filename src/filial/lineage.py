@@ -16,6 +16,7 @@ import json
 import logging
 import math
 import random
+import re
 import shutil
 import sys
 import weakref
@@ -56,6 +57,8 @@ STATE_FORMAT = "filial.lineage/1"
 HELDOUT_LABELS_FILE = "heldout_labels.npy"
 BASELINE_DIR = "baseline"
 BASELINE_FILE = "baseline.json"
+# What a lineage writes in its run directory, and so all that fresh=True deletes.
+_WRITTEN_HERE = re.compile(r"lineage\.json|heldout_labels\.npy|gen\d+|baseline|tb")
 
 
 @dataclass
@@ -332,8 +335,8 @@ class Lineage:
             log.warning("removed %s, a temporary file left by a process that died", path)
         if fresh and is_run:
             log.warning("fresh=True: deleting the earlier run in %s", run_dir)
-            for entry in run_dir.iterdir():  # everything but the lock this process holds
-                if entry.name != RunLock.NAME:
+            for entry in run_dir.iterdir():  # only what filial writes; never the lock
+                if _WRITTEN_HERE.fullmatch(entry.name):
                     shutil.rmtree(entry) if entry.is_dir() else entry.unlink()
             is_run = False
         if not is_run:
@@ -507,7 +510,7 @@ class Lineage:
             return record
 
         self._seed_generation(0)
-        setup = dataclasses.replace(self._setup, run_dir=directory)
+        setup = dataclasses.replace(self._setup, run_dir=directory, write_targets=False)
         gen = Generation(0, self.model_fn(), setup, None, None, on_finish)
         fitted = make_fit(epochs)(gen)
         record = gen.finish(fitted if fitted is not None else gen.model)
@@ -542,7 +545,7 @@ class Lineage:
                     f"model_fn returned a module sharing {len(shared)} parameter tensors with the "
                     "previous generation's; every generation needs its own parameters"
                 )
-        width = probe_outputs(model, self._probe.inputs).shape[1]
+        width = self._probe_model(model).shape[1]
         if width != self._width:
             raise InputError(
                 f"generation {index}'s model has {width} outputs, but the lineage's models have "
@@ -560,9 +563,26 @@ class Lineage:
             raise InputError(
                 f"model_fn must return an nn.Module, but returned {type(model).__name__}"
             )
-        outputs = probe_outputs(model, self._probe.inputs)
+        outputs = self._probe_model(model)
         loss.check(outputs, torch.as_tensor(self._probe.labels))
         return int(outputs.shape[1])
+
+    def _probe_model(self, model: nn.Module) -> torch.Tensor:
+        """The model's outputs on the probe samples; a model that cannot run on them is an
+        input error named here, before any training."""
+        try:
+            outputs = probe_outputs(model, self._probe.inputs)
+        except Exception as exc:  # whatever the user's forward raises
+            raise InputError(
+                f"the model from model_fn fails on a batch of the training data: "
+                f"{type(exc).__name__}: {exc}"
+            ) from exc
+        if not isinstance(outputs, torch.Tensor) or outputs.ndim != 2:
+            found = tuple(outputs.shape) if isinstance(outputs, torch.Tensor) else type(outputs)
+            raise InputError(
+                f"the model must return a tensor of shape (batch, outputs), but returned {found}"
+            )
+        return outputs
 
     def _seed_generation(self, index: int) -> None:
         """Seed every random stream the generation draws from, from ``(seed, index)``.

@@ -39,6 +39,7 @@ from __future__ import annotations
 import copy
 import importlib
 import inspect
+import json
 import math
 import os
 import re
@@ -50,6 +51,17 @@ from typing import Any
 
 from .losses import LOSS_KINDS
 from .store import STORE_DTYPES
+
+MARKER = "# filial run recipe (filial.run/1): resolved by filial run, read by filial report"
+
+
+def is_saved_recipe(path: Path) -> bool:
+    """True when ``path`` is a recipe saved by ``filial run`` (it starts with the marker)."""
+    try:
+        with open(path, encoding="utf-8") as handle:
+            return handle.readline().rstrip("\n") == MARKER
+    except (OSError, UnicodeDecodeError):
+        return False
 
 
 class RecipeError(ValueError):
@@ -217,28 +229,43 @@ class Recipe:
         return values
 
     def to_toml(self) -> str:
-        lines = []
+        """The recipe as TOML, with the marker line that makes its folder a filial run."""
+        lines = [MARKER, ""]
         for section in SECTIONS:
             lines.append(f"[{section}]")
             for key, value in self.values[section].items():
-                lines.append(f"{key} = {_toml_value(value)}")
+                lines.append(f"{_toml_key(key)} = {_toml_value(value)}")
             lines.append("")
         return "\n".join(lines)
 
 
+_BARE_KEY = re.compile(r"[A-Za-z0-9_-]+")
+
+
+def _toml_key(key: str) -> str:
+    return key if _BARE_KEY.fullmatch(key) else json.dumps(key, ensure_ascii=False)
+
+
 def _toml_value(value: Any) -> str:
+    """A TOML literal for a value tomllib can read back unchanged (JSON's string escapes are
+    TOML basic-string escapes; dates and other types are refused)."""
     if isinstance(value, bool):
         return "true" if value else "false"
     if isinstance(value, (int, float)):
+        if isinstance(value, float) and not math.isfinite(value):
+            return "nan" if math.isnan(value) else ("inf" if value > 0 else "-inf")
         return repr(value)
     if isinstance(value, str):
-        escaped = value.replace("\\", "\\\\").replace('"', '\\"')
-        return f'"{escaped}"'
+        return json.dumps(value, ensure_ascii=False)
     if isinstance(value, list):
         return "[" + ", ".join(_toml_value(v) for v in value) + "]"
     if isinstance(value, dict):
-        return "{ " + ", ".join(f"{k} = {_toml_value(v)}" for k, v in value.items()) + " }"
-    raise RecipeError(f"cannot write {_describe(value)} to a recipe")
+        items = ", ".join(f"{_toml_key(k)} = {_toml_value(v)}" for k, v in value.items())
+        return "{ " + items + " }"
+    raise RecipeError(
+        f"a recipe value must be a string, number, boolean, list or table, but got "
+        f"{_describe(value)}"
+    )
 
 
 def resolve(raw: dict[str, Any], overrides: Sequence[str] = (), source: Path | None = None):
@@ -294,7 +321,14 @@ def resolve(raw: dict[str, Any], overrides: Sequence[str] = (), source: Path | N
         )
     if not values["run"]["run_dir"]:
         values["run"]["run_dir"] = os.path.join("runs", values["run"]["name"])
-    return Recipe(values, source)
+    recipe = Recipe(values, source)
+    try:  # what is saved in the run directory must read back as the same recipe
+        same = tomllib.loads(recipe.to_toml()) == values
+    except tomllib.TOMLDecodeError:
+        same = False
+    if not same:
+        raise RecipeError("the recipe cannot be saved and read back unchanged")
+    return recipe
 
 
 def load(path: str | os.PathLike[str], overrides: Sequence[str] = ()) -> Recipe:

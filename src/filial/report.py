@@ -99,7 +99,7 @@ def summarize_lineage(lineage_dir: str | Path, seed: int | None = None) -> dict[
     }
 
 
-def _spread(values: Sequence[float]) -> tuple[float | None, float | None]:
+def spread(values: Sequence[float]) -> tuple[float | None, float | None]:
     values = [v for v in values if isinstance(v, (int, float)) and math.isfinite(v)]
     if not values:
         return None, None
@@ -133,7 +133,7 @@ def summarize(run_dir: str | Path) -> dict[str, Any]:
         present = [x["records"][g] for x in lineages if len(x["records"]) > g]
         row["seeds"] = len(present)
         for key in ("heldout", "test", "train", "ensemble"):
-            row[f"{key}_mean"], row[f"{key}_std"] = _spread([r.get(key) for r in present])
+            row[f"{key}_mean"], row[f"{key}_std"] = spread([r.get(key) for r in present])
         generations.append(row)
     return {
         "run_dir": str(run_dir),
@@ -145,11 +145,15 @@ def summarize(run_dir: str | Path) -> dict[str, Any]:
     }
 
 
-def generation_table(records: Sequence[dict[str, Any]], best: int | None) -> str:
+def generation_table(
+    records: Sequence[dict[str, Any]], best: int | None, targets: str | None = None
+) -> str:
     """One row per generation: held-out, test, train vs labels, ensemble, entropy/norm, seconds."""
-    spread = "target_entropy" if records and "target_entropy" in records[0] else "output_norm"
+    if targets is None:
+        targets = "ce" if any("target_entropy" in r for r in records) else "l2"
+    column = "target_entropy" if targets == "ce" else "output_norm"
     header = f"{'gen':>4} {'held-out':>9} {'test':>7} {'train':>7} {'ensemble':>9} "
-    header += f"{spread.replace('_', ' '):>15} {'agree':>6} {'seconds':>8}"
+    header += f"{column.replace('_', ' '):>15} {'agree':>6} {'seconds':>8}"
     lines = [header]
 
     def cell(value: Any, width: int) -> str:
@@ -161,7 +165,7 @@ def generation_table(records: Sequence[dict[str, Any]], best: int | None) -> str
         )
         lines.append(
             f"{r['generation']:>4} {cell(r['heldout'], 9)} {cell(r['test'], 7)} "
-            f"{cell(r['train'], 7)} {cell(r['ensemble'], 9)} {cell(r.get(spread), 15)} "
+            f"{cell(r['train'], 7)} {cell(r['ensemble'], 9)} {cell(r.get(column), 15)} "
             f"{cell(r['agreement'], 6)} {r['seconds']:>8.2f}{mark}"
         )
     return "\n".join(lines)
@@ -177,7 +181,7 @@ def format_report(summary: dict[str, Any]) -> str:
     for x in summary["lineages"]:
         out.append("")
         out.append(f"seed {x['seed']} ({x['targets']} targets, {x['lineage_dir']})")
-        out.append(generation_table(x["records"], x["best"]))
+        out.append(generation_table(x["records"], x["best"], x["targets"]))
         out.append(f"stopped: {x['stop_in_words']}")
         if x["best"] is not None:
             out.append(f"kept generation {x['best']}: {x['checkpoint']}")
@@ -193,15 +197,15 @@ def format_report(summary: dict[str, Any]) -> str:
         base = x["baseline"]
         if base is not None and x["best"] is not None:
             kept = x["records"][x["best"]]
-            out.append(
-                f"matched baseline ({base['epochs_matched']} epochs on the labels): held-out "
-                f"{base['heldout']:.4f} against {kept['heldout']:.4f} for the kept generation"
-                + (
-                    f"; test {base['test']:.4f} against {kept['test']:.4f}"
-                    if base.get("test") is not None and kept.get("test") is not None
-                    else ""
-                )
-            )
+            head = f"matched baseline ({base['epochs_matched']} epochs on the labels):"
+            if base.get("heldout") is None:
+                out.append(f"{head} diverged")
+            else:
+                line = f"{head} held-out {base['heldout']:.4f} against {kept['heldout']:.4f}"
+                line += " for the kept generation"
+                if base.get("test") is not None and kept.get("test") is not None:
+                    line += f"; test {base['test']:.4f} against {kept['test']:.4f}"
+                out.append(line)
     if len(summary["lineages"]) > 1:
         out.append("")
         out.append("across seeds (mean +- standard deviation)")
