@@ -112,6 +112,8 @@ def plan(recipe_path: str, overrides: Sequence[str], run_dir: str | None) -> Pla
     g = recipe["generations"]
     try:
         StudentLoss(g["targets"], g["temperature"], g["label_weight"])
+        if g["top_k"] and g["targets"] == "l2":
+            raise ValueError("generations.top_k goes with targets = 'ce' only")
         StopRule(g["max"], g["patience"], g["min_gain"])
     except ValueError as exc:
         raise recipes.RecipeError(f"[generations]: {exc}") from exc
@@ -201,6 +203,7 @@ def _lineage(p: Plan, run_dir: Path, seed: int, quiet: bool, fresh: bool = False
         min_gain=g["min_gain"],
         views=g["views"],
         store_dtype=g["store_dtype"],
+        top_k=g["top_k"] or None,
         test_loader=p.test,
         seed=seed,
         progress=not quiet,

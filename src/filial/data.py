@@ -30,6 +30,7 @@ import torch
 from torch.utils.data import DataLoader, Dataset, IterableDataset
 
 from .errors import InputError
+from .losses import TopKTargets
 from .store import TargetStore
 
 _LOADER_PARAMS = set(inspect.signature(DataLoader.__init__).parameters)
@@ -161,6 +162,8 @@ class IndexedCollate:
         if self.store is None:
             return inputs, labels, None
         rows = self.store.gather(np.asarray(fetched.indices, dtype=np.int64))
+        if isinstance(rows, tuple):  # a top-k store: the k values and their classes
+            return inputs, labels, TopKTargets(torch.from_numpy(rows[0]), torch.from_numpy(rows[1]))
         return inputs, labels, torch.from_numpy(rows)
 
 

@@ -50,6 +50,7 @@ class Setup:
     fingerprint: str
     seed: int
     write_targets: bool = True  # False for a model nobody distils from (the matched baseline)
+    top_k: int | None = None  # keep only the k largest outputs per sample (ce only)
 
 
 @dataclass
@@ -172,6 +173,7 @@ def write_targets(
         dtype=setup.store_dtype,
         fingerprint=setup.fingerprint,
         teacher_sha256=teacher_sha256,
+        top_k=setup.top_k,
     )
 
 

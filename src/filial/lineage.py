@@ -208,13 +208,14 @@ class Lineage:
                 ValueError(f"store_dtype must be one of {STORE_DTYPES}, but got {store_dtype!r}")
             )
         if top_k is not None:
-            problems.append(
-                ValueError(
-                    "top_k=... compact targets are not available in this version of filial; "
-                    "use top_k=None"
-                    + (" (and top_k never goes with targets='l2')" if targets == "l2" else "")
+            top_k = attempt(lambda: as_count(top_k, "top_k", minimum=1))
+            if targets == "l2":
+                problems.append(
+                    ValueError(
+                        "top_k keeps only the k largest outputs, which suits soft cross-entropy; "
+                        "with targets='l2' students regress on every output. Use top_k=None."
+                    )
                 )
-            )
         if metric is not None and not callable(metric):
             problems.append(TypeError(f"metric must be callable or None, but got {metric!r}"))
         seed = attempt(lambda: as_count(seed, "seed", minimum=0))
@@ -242,6 +243,11 @@ class Lineage:
 
         self._probe = train_probe
         self._width = self._check_model(model_fn, loss)
+        if top_k is not None and top_k > self._width:
+            raise InputError(
+                f"top_k={top_k} is more than the model's {self._width} outputs; use at most "
+                f"top_k={self._width}"
+            )
         self.model_fn = model_fn
         self.run_dir = Path(run_dir)
         self.progress = bool(progress)
@@ -282,6 +288,7 @@ class Lineage:
             views=views,
             fingerprint=train_print,
             seed=seed,
+            top_k=top_k,
         )
         self._records: list[dict[str, Any]] = []
         self._decision: dict[str, Any] | None = None

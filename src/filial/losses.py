@@ -24,6 +24,7 @@ from __future__ import annotations
 
 import math
 import numbers
+from typing import NamedTuple
 
 import torch
 import torch.nn.functional as F
@@ -48,6 +49,34 @@ def soft_cross_entropy(
         return F.cross_entropy(outputs, F.softmax(targets, dim=-1))
     # cross_entropy with probability targets is -mean_b sum_c p_c log_softmax(z)_c in one kernel.
     return F.cross_entropy(outputs / t, F.softmax(targets / t, dim=-1)) * (t * t)
+
+
+class TopKTargets(NamedTuple):
+    """A teacher's k largest outputs per sample and their classes (``top_k`` stores)."""
+
+    values: torch.Tensor  # (B, k) float32
+    classes: torch.Tensor  # (B, k) int64
+
+    def to(self, device: torch.device, non_blocking: bool = False) -> TopKTargets:
+        return TopKTargets(
+            self.values.to(device, non_blocking=non_blocking),
+            self.classes.to(device, non_blocking=non_blocking),
+        )
+
+
+def soft_cross_entropy_top_k(
+    outputs: torch.Tensor, targets: TopKTargets, temperature: float
+) -> torch.Tensor:
+    """Soft cross-entropy to a teacher known only by its k largest logits.
+
+    The teacher distribution is the softmax over those k logits, the other classes treated as
+    absent (probability 0); the student keeps its softmax over all classes. With k = C this is
+    :func:`soft_cross_entropy`.
+    """
+    t = float(temperature)
+    teacher = F.softmax(targets.values / t, dim=-1)
+    student = F.log_softmax(outputs / t, dim=-1).gather(1, targets.classes)
+    return -(teacher * student).sum(dim=-1).mean() * (t * t)
 
 
 def _is_integer(labels: torch.Tensor) -> bool:
@@ -133,6 +162,8 @@ class StudentLoss:
         return squared_error(outputs, labels.reshape(outputs.shape).to(outputs.dtype))
 
     def teacher_term(self, outputs: torch.Tensor, targets: torch.Tensor) -> torch.Tensor:
+        if isinstance(targets, TopKTargets):
+            return soft_cross_entropy_top_k(outputs, targets, self.temperature)
         if self.kind == "ce":
             return soft_cross_entropy(outputs, targets, self.temperature)
         return squared_error(outputs, targets)
@@ -147,9 +178,17 @@ class StudentLoss:
             labels = labels.to(outputs.device, non_blocking=True)
         if targets is None:
             return self.label_term(outputs, labels)
-        if targets.device != outputs.device:
+        if isinstance(targets, TopKTargets):
+            if targets.values.device != outputs.device:
+                targets = targets.to(outputs.device, non_blocking=True)
+        elif targets.device != outputs.device:
             targets = targets.to(outputs.device, non_blocking=True)
-        if targets.shape != outputs.shape:
+        if isinstance(targets, TopKTargets):
+            if len(targets.values) != len(outputs):
+                raise InputError(
+                    f"{len(targets.values)} top-k targets for a batch of {len(outputs)} outputs"
+                )
+        elif targets.shape != outputs.shape:
             raise InputError(
                 f"the model returned outputs of shape {tuple(outputs.shape)} but the teacher's "
                 f"targets have shape {tuple(targets.shape)}: every generation must have the same "

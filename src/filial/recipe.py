@@ -103,6 +103,7 @@ _SCHEMA: dict[str, dict[str, Field]] = {
         "min_gain": Field("float", 0.0, minimum=0.0),
         "views": Field("int", 1, minimum=1),
         "store_dtype": Field("choice", "float16", STORE_DTYPES),
+        "top_k": Field("int", 0, minimum=0, help="0: every output; k: the k largest (ce only)"),
     },
 }
 _FACTORY_SECTIONS = ("data", "model")

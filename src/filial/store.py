@@ -45,12 +45,14 @@ class TargetStore:
     """Read access to a finished store; :meth:`write` makes one."""
 
     ARRAY = "targets.npy"
+    INDEX = "targets_index.npy"  # top-k layout only: the class of each kept value
     MANIFEST = "targets.json"
 
     def __init__(self, directory: str | os.PathLike[str]) -> None:
         self.directory = Path(directory)
         self._manifest: dict[str, Any] | None = None
         self._array: np.ndarray | None = None
+        self._index: np.ndarray | None = None
 
     # -- writing -----------------------------------------------------------------------------
 
@@ -63,8 +65,14 @@ class TargetStore:
         dtype: str = "float16",
         fingerprint: str,
         teacher_sha256: str,
+        top_k: int | None = None,
     ) -> TargetStore:
-        """Write ``outputs`` of shape ``(N, views, C)`` as a complete store and return it."""
+        """Write ``outputs`` of shape ``(N, views, C)`` as a complete store and return it.
+
+        With ``top_k=k`` only the k largest outputs of each (sample, view) are kept, in
+        ``targets.npy`` (N, views, k), with their class indices in ``targets_index.npy``
+        (int16, or int32 when C needs it).
+        """
         if dtype not in STORE_DTYPES:
             raise StoreError(f"store dtype must be one of {STORE_DTYPES}, but got {dtype!r}")
         outputs = np.asarray(outputs)
@@ -72,6 +80,9 @@ class TargetStore:
             raise StoreError(
                 f"outputs must have shape (N, views, C) with no empty axis, but got {outputs.shape}"
             )
+        count, views, classes = outputs.shape
+        if top_k is not None and not 1 <= top_k <= classes:
+            raise StoreError(f"top_k should lie in [1, {classes}], but got top_k={top_k!r}")
         if not np.isfinite(outputs).all():
             raise StoreError("outputs hold NaN or infinite values; such targets are never stored")
         if dtype == "float16":
@@ -83,28 +94,44 @@ class TargetStore:
                 )
         directory = Path(directory)
         directory.mkdir(parents=True, exist_ok=True)
-        array = np.ascontiguousarray(outputs, dtype=dtype)
-        array_path = directory / cls.ARRAY
         manifest_path = directory / cls.MANIFEST
-        # An older manifest must not vouch for the new array while it is being replaced.
+        # An older manifest must not vouch for the new arrays while they are being replaced.
         manifest_path.unlink(missing_ok=True)
+        index = None
+        if top_k is None:
+            array = np.ascontiguousarray(outputs, dtype=dtype)
+        else:
+            # The k largest per row, largest first (ties broken by the lower class index).
+            order = np.argsort(-outputs, axis=2, kind="stable")[:, :, :top_k]
+            index_dtype = np.int16 if classes <= np.iinfo(np.int16).max else np.int32
+            index = np.ascontiguousarray(order, dtype=index_dtype)
+            array = np.ascontiguousarray(np.take_along_axis(outputs, order, axis=2), dtype=dtype)
+        array_path = directory / cls.ARRAY
         atomic_write(array_path, lambda handle: np.save(handle, array, allow_pickle=False))
-        count, views, classes = array.shape
         manifest = {
             "format": FORMAT,
-            "layout": "dense",
+            "layout": "dense" if index is None else "top_k",
             "dtype": dtype,
-            "shape": [count, views, classes],
+            "shape": list(array.shape),
             "count": count,
             "views": views,
             "classes": classes,
-            "top_k": None,
+            "top_k": top_k,
             "bytes": array_path.stat().st_size,
-            "bytes_per_sample": views * classes * array.itemsize,
+            "bytes_per_sample": views * array.shape[2] * array.itemsize,
             "sha256": sha256_file(array_path),
             "fingerprint": fingerprint,
             "teacher_sha256": teacher_sha256,
         }
+        if index is not None:
+            index_path = directory / cls.INDEX
+            atomic_write(index_path, lambda handle: np.save(handle, index, allow_pickle=False))
+            manifest.update(
+                index_dtype=str(index.dtype),
+                index_bytes=index_path.stat().st_size,
+                index_sha256=sha256_file(index_path),
+                bytes_per_sample=views * top_k * (array.itemsize + index.itemsize),
+            )
         atomic_write_json(manifest_path, manifest)
         store = cls(directory)
         store._manifest = manifest
@@ -159,6 +186,12 @@ class TargetStore:
             )
         if checksum and sha256_file(path) != manifest["sha256"]:
             raise StoreError(f"{path} does not match the sha256 in its manifest: it is damaged")
+        if manifest.get("layout") == "top_k":
+            index_path = self.directory / self.INDEX
+            if not index_path.is_file() or index_path.stat().st_size != manifest["index_bytes"]:
+                raise StoreError(f"{index_path} is missing or truncated")
+            if checksum and sha256_file(index_path) != manifest["index_sha256"]:
+                raise StoreError(f"{index_path} does not match its manifest: it is damaged")
 
     @property
     def array(self) -> np.ndarray:
@@ -174,11 +207,32 @@ class TargetStore:
             self._array = np.asarray(array)
         return self._array
 
-    def gather(self, indices: np.ndarray, views: np.ndarray | None = None) -> np.ndarray:
-        """Rows for dataset ``indices`` (and one view each, default view 0) as float32 (B, C)."""
-        array = self.array
-        rows = array[:, 0].take(indices, axis=0) if views is None else array[indices, views]
-        return rows.astype(np.float32, copy=False)
+    @property
+    def top_k(self) -> int | None:
+        return self.manifest.get("top_k")
+
+    @property
+    def index_array(self) -> np.ndarray:
+        """The top-k layout's memory-mapped class indices, (N, views, k)."""
+        if self._index is None:
+            index = np.load(self.directory / self.INDEX, mmap_mode="r", allow_pickle=False)
+            self._index = np.asarray(index)
+        return self._index
+
+    def gather(self, indices: np.ndarray, views: np.ndarray | None = None) -> Any:
+        """Rows for dataset ``indices`` (and one view each, default view 0).
+
+        Dense layout: float32 (B, C). Top-k layout: ``(values, classes)``, float32 and int64
+        arrays of shape (B, k).
+        """
+        rows = self._take(self.array, indices, views).astype(np.float32, copy=False)
+        if self.top_k is None:
+            return rows
+        return rows, self._take(self.index_array, indices, views).astype(np.int64)
+
+    @staticmethod
+    def _take(array: np.ndarray, indices: np.ndarray, views: np.ndarray | None) -> np.ndarray:
+        return array[:, 0].take(indices, axis=0) if views is None else array[indices, views]
 
     def read_all(self) -> np.ndarray:
         """The whole store as an in-memory float32 array of shape (N, views, C)."""
@@ -187,7 +241,7 @@ class TargetStore:
     def __getstate__(self) -> dict[str, Any]:
         # Worker processes (spawn on macOS) get the path, never an open memory map.
         state = self.__dict__.copy()
-        state["_array"] = None
+        state["_array"] = state["_index"] = None
         return state
 
     def __repr__(self) -> str:
