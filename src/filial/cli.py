@@ -204,6 +204,7 @@ def _lineage(p: Plan, run_dir: Path, seed: int, quiet: bool, fresh: bool = False
         views=g["views"],
         store_dtype=g["store_dtype"],
         top_k=g["top_k"] or None,
+        teacher_mode=g["teacher"],
         test_loader=p.test,
         seed=seed,
         progress=not quiet,

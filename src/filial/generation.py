@@ -177,6 +177,31 @@ def write_targets(
     )
 
 
+class OnlineTeacherLoader:
+    """The training loader with each batch's targets from running the teacher on it.
+
+    Exact for any augmentation (the teacher sees the very inputs the student sees), at the cost
+    of a teacher forward pass per step. The teacher follows the student to its device at the
+    start of every epoch and runs in eval mode without gradients.
+    """
+
+    def __init__(self, loader: DataLoader, teacher: nn.Module, student: nn.Module) -> None:
+        self.loader = loader
+        self.teacher = teacher.eval()
+        self.student = student
+
+    def __len__(self) -> int:
+        return len(self.loader)
+
+    def __iter__(self):
+        device = model_device(self.student)
+        teacher = self.teacher.to(device)
+        for inputs, labels, _ in self.loader:
+            with torch.no_grad():
+                targets = teacher(move_to(inputs, device)).float()
+            yield inputs, labels, targets
+
+
 class Generation:
     """One generation of a lineage. ``index`` 0 learns from labels; later ones from a teacher.
 
@@ -192,11 +217,13 @@ class Generation:
         teacher: int | None,
         store: TargetStore | None,
         on_finish: Callable[[Generation, dict[str, Any], Predictions], dict[str, Any]],
+        teacher_model: nn.Module | None = None,
     ) -> None:
         self.index = index
         self.model = model
         self.teacher = teacher
         self.store = store
+        self.teacher_model = teacher_model  # online mode: the teacher runs on every batch
         self.history: list[dict[str, float]] = []
         self.record: dict[str, Any] | None = None
         self._setup = setup
@@ -213,10 +240,15 @@ class Generation:
         return self.record is not None
 
     @property
-    def loader(self) -> DataLoader:
+    def loader(self) -> DataLoader | OnlineTeacherLoader:
         """The user's training loader, rebuilt to yield ``(inputs, labels, targets)``."""
         if self._loader is None:
-            self._loader = training_loader(self._setup.train_loader, self.store)
+            if self.teacher_model is not None:
+                self._loader = OnlineTeacherLoader(
+                    training_loader(self._setup.train_loader, None), self.teacher_model, self.model
+                )
+            else:
+                self._loader = training_loader(self._setup.train_loader, self.store)
         return self._loader
 
     def loss(
@@ -250,7 +282,10 @@ class Generation:
         record: dict[str, Any] = {
             "generation": self.index,
             "teacher": self.teacher,
-            "mode": "cached",
+            # What the generation learned from: the labels, the cache, or a teacher run online.
+            "mode": "labels"
+            if self.teacher is None
+            else ("online" if self.teacher_model is not None else "cached"),
             "heldout": None if diverged else metric(heldout.outputs, heldout.labels),
             "test": None,
             "train": None if diverged else metric(train.outputs, train.labels),

@@ -57,6 +57,7 @@ STATE_FORMAT = "filial.lineage/1"
 HELDOUT_LABELS_FILE = "heldout_labels.npy"
 BASELINE_DIR = "baseline"
 BASELINE_FILE = "baseline.json"
+TEACHER_MODES = ("cached", "online")
 # What a lineage writes in its run directory, and so all that fresh=True deletes.
 _WRITTEN_HERE = re.compile(r"lineage\.json|heldout_labels\.npy|gen\d+|baseline|tb")
 
@@ -84,12 +85,20 @@ class Result:
         if self.best is None:
             raise ValueError("no generation finished without diverging, so there is no best model")
         record = next(r for r in self.records if r["generation"] == self.best)
-        with preserved_rng():  # building a module draws initial weights; keep the caller's RNG
-            model = self.model_fn()
-        model.load_state_dict(
-            load_checkpoint(self.run_dir / record["checkpoint"], record.get("checkpoint_sha256"))
-        )
-        return model
+        return load_generation(self.model_fn, self.run_dir, record)
+
+
+def load_generation(
+    model_fn: Callable[[], nn.Module], run_dir: Path, record: dict[str, Any]
+) -> nn.Module:
+    """A fresh ``model_fn()`` module with a finished generation's checkpoint, checked against
+    its recorded sha256. Building the module draws initial weights: the caller's RNG is kept."""
+    with preserved_rng():
+        model = model_fn()
+    model.load_state_dict(
+        load_checkpoint(run_dir / record["checkpoint"], record.get("checkpoint_sha256"))
+    )
+    return model
 
 
 def _seed_everything(seed: int) -> None:
@@ -155,6 +164,7 @@ class Lineage:
         metric: Metric | None = None,
         test_loader: DataLoader | None = None,
         seed: int = 0,
+        teacher_mode: str = "cached",
         fresh: bool = False,
         progress: bool = True,
         tensorboard: bool | str | Path = True,
@@ -216,6 +226,17 @@ class Lineage:
                         "with targets='l2' students regress on every output. Use top_k=None."
                     )
                 )
+        if teacher_mode not in TEACHER_MODES:
+            problems.append(
+                ValueError(f"teacher_mode must be one of {TEACHER_MODES}, but got {teacher_mode!r}")
+            )
+        elif teacher_mode == "online" and top_k is not None:
+            problems.append(
+                ValueError(
+                    "top_k compacts the cached targets; teacher_mode='online' caches none. Use "
+                    "one or the other."
+                )
+            )
         if metric is not None and not callable(metric):
             problems.append(TypeError(f"metric must be callable or None, but got {metric!r}"))
         seed = attempt(lambda: as_count(seed, "seed", minimum=0))
@@ -266,6 +287,7 @@ class Lineage:
             "views": views,
             "store_dtype": store_dtype,
             "top_k": top_k,
+            "teacher_mode": teacher_mode,
             "seed": seed,
             "metric": metric_name(metric),
             "model_fn": metric_name(model_fn),
@@ -532,7 +554,11 @@ class Lineage:
 
     def _begin(self, index: int) -> Generation:
         teacher = self._records[-1]["generation"] if self._records else None
-        store = self._teacher_store(self._records[-1]) if self._records else None
+        teacher_model = store = None
+        if self._records and self.settings["teacher_mode"] == "online":
+            teacher_model = load_generation(self.model_fn, self.run_dir, self._records[-1])
+        elif self._records:
+            store = self._teacher_store(self._records[-1])
         self._seed_generation(index)
         model = self.model_fn()
         if not isinstance(model, nn.Module):
@@ -559,7 +585,9 @@ class Lineage:
                 f"{self._width}: model_fn must build the same architecture every generation"
             )
         self._previous_model = weakref.ref(model)
-        return Generation(index, model, self._setup, teacher, store, self._record)
+        return Generation(
+            index, model, self._setup, teacher, store, self._record, teacher_model=teacher_model
+        )
 
     def _check_model(self, model_fn: Callable[[], nn.Module], loss: StudentLoss) -> int:
         """Build one model and run it on the probe samples: its output width, and labels that
@@ -634,10 +662,7 @@ class Lineage:
                 exc,
                 record["generation"],
             )
-        model = self.model_fn()
-        model.load_state_dict(
-            load_checkpoint(self.run_dir / record["checkpoint"], record.get("checkpoint_sha256"))
-        )
+        model = load_generation(self.model_fn, self.run_dir, record)
         seed = derive_seed(self.settings["seed"], record["generation"], 1)
         outputs = predict(model, self._setup.train_loader, seed).outputs
         return write_targets(self._setup, directory, outputs, record["checkpoint_sha256"])

@@ -104,6 +104,7 @@ _SCHEMA: dict[str, dict[str, Field]] = {
         "views": Field("int", 1, minimum=1),
         "store_dtype": Field("choice", "float16", STORE_DTYPES),
         "top_k": Field("int", 0, minimum=0, help="0: every output; k: the k largest (ce only)"),
+        "teacher": Field("choice", "cached", ("cached", "online")),
     },
 }
 _FACTORY_SECTIONS = ("data", "model")
