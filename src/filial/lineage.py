@@ -311,6 +311,7 @@ class Lineage:
             fingerprint=train_print,
             seed=seed,
             top_k=top_k,
+            guard_rng=train_probe.draws_rng or heldout_probe.draws_rng,
         )
         self._records: list[dict[str, Any]] = []
         self._decision: dict[str, Any] | None = None
