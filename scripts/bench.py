@@ -271,9 +271,9 @@ def lineage_overhead(epochs: int, work: Path) -> dict[str, Any]:
     )
     original = filial.generation.predict
 
-    def timed_predict(model, loader, seed, *args, **kwargs):
+    def timed_predict(model, loader, seed, fault=None):
         start = time.perf_counter()
-        result = original(model, loader, seed, *args, **kwargs)
+        result = original(model, loader, seed, fault)
         if loader is train:
             spent["teacher"] += time.perf_counter() - start
         return result

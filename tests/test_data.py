@@ -884,9 +884,3 @@ def test_probe_fingerprints_inputs_when_they_repeat():
     assert (
         augmented.fingerprint == probe(DataLoader(AugmentedData(40, 0), batch_size=8)).fingerprint
     )
-
-
-def test_probe_tells_whether_fetching_draws_from_the_global_generators():
-    """Evaluation skips saving and restoring the generators only for datasets that draw none."""
-    assert not probe(DataLoader(tensor_data(40), batch_size=8)).draws_rng
-    assert probe(DataLoader(AugmentedData(40, 0), batch_size=8)).draws_rng

@@ -68,3 +68,43 @@ def test_online_mode_is_a_setting_and_refuses_top_k(loaders, tmp_path):
         TinyNet(), train, heldout, run_dir=tmp_path / "c", teacher_mode="online"
     )
     assert lineage.settings["teacher_mode"] == "online"
+
+
+def test_online_loader_acts_as_the_loader_and_no_cache_is_written(loaders, tmp_path):
+    train, heldout, _ = loaders
+    lineage = filial.Lineage(
+        TinyNet(),
+        train,
+        heldout,
+        run_dir=tmp_path / "run",
+        max_generations=1,
+        teacher_mode="online",
+        progress=False,
+    )
+    gens = iter(lineage)
+    gen0 = next(gens)
+    gen0.finish(gen0.model)
+    gen1 = next(gens)
+    assert gen1.loader.dataset is not None and gen1.loader.sampler is not None  # passed through
+    assert len(gen1.loader) == len(train)
+    assert not (tmp_path / "run" / "gen0" / "targets.npy").exists()
+
+
+def test_runs_written_before_teacher_mode_existed_still_resume(loaders, tmp_path):
+    import json
+
+    train, heldout, _ = loaders
+    run = tmp_path / "run"
+    lineage = filial.Lineage(
+        TinyNet(), train, heldout, run_dir=run, max_generations=2, progress=False
+    )
+    gen0 = next(iter(lineage))
+    gen0.finish(gen0.model)
+    lineage.close()
+    state = json.loads((run / "lineage.json").read_text())
+    del state["settings"]["teacher_mode"]  # as an older filial wrote it
+    (run / "lineage.json").write_text(json.dumps(state))
+    resumed = filial.Lineage(
+        TinyNet(), train, heldout, run_dir=run, max_generations=2, progress=False
+    )
+    assert [r["generation"] for r in resumed.result.records] == [0]

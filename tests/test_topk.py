@@ -132,3 +132,11 @@ def test_top_k_is_refused_with_l2_and_beyond_the_output_width(loaders, tmp_path)
     mixed = loss(z, labels, TopKTargets(top.values, top.indices))
     expected = 0.75 * soft_cross_entropy_top_k(z, TopKTargets(top.values, top.indices), 2.0)
     torch.testing.assert_close(mixed, expected + 0.25 * F.cross_entropy(z, labels))
+
+
+def test_top_k_loss_takes_int32_classes():
+    z = torch.randn(3, 6)
+    top = torch.topk(torch.randn(3, 6), 2)
+    wide = soft_cross_entropy_top_k(z, TopKTargets(top.values, top.indices), 1.5)
+    narrow = soft_cross_entropy_top_k(z, TopKTargets(top.values, top.indices.int()), 1.5)
+    torch.testing.assert_close(wide, narrow)

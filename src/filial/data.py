@@ -246,20 +246,6 @@ def preserved_rng() -> Iterator[None]:
         np.random.set_state(np_state)
 
 
-def _global_states() -> tuple[Any, Any, Any]:
-    return torch.get_rng_state(), random.getstate(), np.random.get_state()
-
-
-def _same_states(a: tuple[Any, Any, Any], b: tuple[Any, Any, Any]) -> bool:
-    return (
-        torch.equal(a[0], b[0])
-        and a[1] == b[1]
-        and a[2][0] == b[2][0]
-        and np.array_equal(a[2][1], b[2][1])
-        and a[2][2:] == b[2][2:]
-    )
-
-
 def _tensor_bytes(value: Any, digest: Any) -> None:
     """Feed every tensor or array in (nested lists, tuples, dicts of) ``value`` to ``digest``."""
     if isinstance(value, torch.Tensor):
@@ -286,7 +272,6 @@ class Probe:
     inputs: Any  # the probe samples' inputs and labels, collated by the user's collate_fn
     labels: Any
     deterministic: bool  # the same index gave the same inputs twice
-    draws_rng: bool = True  # fetching samples moves torch's, Python's or numpy's global RNG
 
 
 def probe(loader: DataLoader, probes: int = 64) -> Probe:
@@ -310,13 +295,6 @@ def probe(loader: DataLoader, probes: int = 64) -> Probe:
     with preserved_rng():
         inputs, labels = fetch(indices)
         again, _ = fetch(indices)
-        # The states a fetch ends in, against those of the seeding alone: equal when fetching
-        # samples draws from none of the global generators.
-        after_fetch = _global_states()
-        torch.manual_seed(0)
-        random.seed(0)
-        np.random.seed(0)
-        draws = not _same_states(after_fetch, _global_states())
     first_digest, again_digest = hashlib.sha256(), hashlib.sha256()
     _tensor_bytes(inputs, first_digest)
     _tensor_bytes(again, again_digest)
@@ -325,7 +303,7 @@ def probe(loader: DataLoader, probes: int = 64) -> Probe:
     _tensor_bytes(labels, digest)
     if deterministic:
         digest.update(first_digest.digest())
-    return Probe(digest.hexdigest(), inputs, labels, deterministic, draws)
+    return Probe(digest.hexdigest(), inputs, labels, deterministic)
 
 
 def fingerprint(loader: DataLoader, probes: int = 64) -> str:

@@ -13,7 +13,6 @@ from __future__ import annotations
 
 import time
 from collections.abc import Callable
-from contextlib import nullcontext
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -52,7 +51,6 @@ class Setup:
     seed: int
     write_targets: bool = True  # False for a model nobody distils from (the matched baseline)
     top_k: int | None = None  # keep only the k largest outputs per sample (ce only)
-    guard_rng: bool = True  # False: fetching samples draws from no global generator
 
 
 @dataclass
@@ -84,11 +82,7 @@ def model_device(model: nn.Module) -> torch.device:
 
 
 def predict(
-    model: nn.Module,
-    loader: DataLoader,
-    seed: int,
-    fault: str | None = None,
-    guard_rng: bool = True,
+    model: nn.Module, loader: DataLoader, seed: int, fault: str | None = None
 ) -> Predictions:
     """Outputs of ``model`` (in eval mode, restored afterwards) over ``loader``'s whole dataset.
 
@@ -106,10 +100,7 @@ def predict(
     try:
         # A dataset with random augmentation draws from the global generators in this process
         # when the loader has no workers; the evaluation must not move the user's streams.
-        # (guard_rng=False when the probe saw that fetching draws nothing: saving and
-        # restoring three generators costs more than a small model's whole batch.)
-        guard = preserved_rng() if guard_rng and loader.num_workers == 0 else nullcontext()
-        with guard, torch.inference_mode():
+        with preserved_rng(), torch.inference_mode():
             for indices, inputs, batch_labels in sequential_loader(loader, seed):
                 if fault is not None:
                     fault_point("teacher", fault)
@@ -202,6 +193,12 @@ class OnlineTeacherLoader:
     def __len__(self) -> int:
         return len(self.loader)
 
+    def __getattr__(self, name: str) -> Any:
+        # Everything else (``sampler.set_epoch``, ``dataset``, ``batch_size``) is the loader's.
+        if name == "loader":
+            raise AttributeError(name)
+        return getattr(self.loader, name)
+
     def __iter__(self):
         device = model_device(self.student)
         teacher = self.teacher.to(device)
@@ -279,12 +276,9 @@ class Generation:
             raise TypeError(f"finish() needs the trained nn.Module, but got {type(model).__name__}")
         setup = self._setup
         seed = derive_seed(setup.seed, self.index, 1)
-        guard = setup.guard_rng
-        train = predict(model, setup.train_loader, seed, f"gen{self.index}", guard)
-        heldout = predict(model, setup.heldout_loader, seed, guard_rng=guard)
-        test = None
-        if setup.test_loader is not None:
-            test = predict(model, setup.test_loader, seed, guard_rng=guard)
+        train = predict(model, setup.train_loader, seed, fault=f"gen{self.index}")
+        heldout = predict(model, setup.heldout_loader, seed)
+        test = predict(model, setup.test_loader, seed) if setup.test_loader is not None else None
         metric = setup.metric
         diverged = not (
             _finite_module(model)
@@ -317,7 +311,7 @@ class Generation:
         )
         if diverged:
             # An earlier attempt at this generation may have left a store; it is never a teacher.
-            for name in (TargetStore.MANIFEST, TargetStore.ARRAY):
+            for name in (TargetStore.MANIFEST, TargetStore.ARRAY, TargetStore.INDEX):
                 (self.directory / name).unlink(missing_ok=True)
         elif setup.write_targets:
             write_targets(setup, self.directory, train.outputs, teacher_sha)

@@ -58,6 +58,8 @@ HELDOUT_LABELS_FILE = "heldout_labels.npy"
 BASELINE_DIR = "baseline"
 BASELINE_FILE = "baseline.json"
 TEACHER_MODES = ("cached", "online")
+# Settings added after the first format: a run written before them used these values.
+_SETTING_DEFAULTS = {"teacher_mode": "cached"}
 # What a lineage writes in its run directory, and so all that fresh=True deletes.
 _WRITTEN_HERE = re.compile(r"lineage\.json|heldout_labels\.npy|gen\d+|baseline|tb")
 
@@ -311,7 +313,7 @@ class Lineage:
             fingerprint=train_print,
             seed=seed,
             top_k=top_k,
-            guard_rng=train_probe.draws_rng or heldout_probe.draws_rng,
+            write_targets=teacher_mode != "online",  # online students never read a cache
         )
         self._records: list[dict[str, Any]] = []
         self._decision: dict[str, Any] | None = None
@@ -390,10 +392,11 @@ class Lineage:
     def _refuse_other_settings(self, state: dict[str, Any]) -> list[str]:
         """Raise if ``state`` has finished generations under other settings; else return the
         differences (which may then replace the old settings)."""
+        saved = {**_SETTING_DEFAULTS, **state["settings"]}  # keys newer than the run's file
         differences = [
-            f"{key}: {state['settings'].get(key)!r} in the run, {value!r} now"
+            f"{key}: {saved.get(key)!r} in the run, {value!r} now"
             for key, value in self.settings.items()
-            if state["settings"].get(key) != value
+            if saved.get(key) != value
         ]
         if differences and state["records"]:
             raise InputError(

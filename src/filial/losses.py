@@ -75,7 +75,7 @@ def soft_cross_entropy_top_k(
     """
     t = float(temperature)
     teacher = F.softmax(targets.values / t, dim=-1)
-    student = F.log_softmax(outputs / t, dim=-1).gather(1, targets.classes)
+    student = F.log_softmax(outputs / t, dim=-1).gather(1, targets.classes.long())
     return -(teacher * student).sum(dim=-1).mean() * (t * t)
 
 
