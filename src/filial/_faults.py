@@ -34,6 +34,12 @@ def _parse(spec: str) -> tuple[str, str, int, str]:
 _TARGET = _parse(_SPEC) if _SPEC else None
 
 
+def armed(kind: str) -> bool:
+    """True when ``FILIAL_FAULT`` names a point of this kind (callers on a per-batch path ask
+    once, so that an unarmed run pays nothing per batch)."""
+    return _TARGET is not None and _TARGET[0] == kind
+
+
 def fault_point(kind: str, name: str) -> None:
     """Die here (or fail like a full disk) if ``FILIAL_FAULT`` names this point."""
     global _hits

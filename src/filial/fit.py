@@ -14,7 +14,7 @@ import torch
 from torch import nn
 from tqdm.auto import tqdm
 
-from ._faults import fault_point
+from ._faults import armed, fault_point
 from .generation import Generation, model_device, move_to
 
 OptimizerFactory = Callable[[Iterable[nn.Parameter]], torch.optim.Optimizer]
@@ -59,7 +59,7 @@ class EpochFit:
         optimizer = self.optimizer(model.parameters())
         scheduler = self.scheduler(optimizer) if self.scheduler is not None else None
         model.train()
-        fault_name = f"gen{gen.index}"
+        fault_name = f"gen{gen.index}" if armed("batch") else None
         # disable=None lets tqdm switch itself off when stderr is not a terminal.
         disable = None if self.progress is None else not self.progress
         bar = tqdm(
@@ -76,7 +76,8 @@ class EpochFit:
             batches = samples = 0
             classify = True
             for inputs, labels, targets in gen.loader:
-                fault_point("batch", fault_name)
+                if fault_name is not None:
+                    fault_point("batch", fault_name)
                 labels = labels.to(device, non_blocking=True)
                 outputs = model(move_to(inputs, device))
                 loss = gen.loss(outputs, labels, targets)

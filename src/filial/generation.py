@@ -23,7 +23,7 @@ import torch.nn.functional as F
 from torch import nn
 from torch.utils.data import DataLoader
 
-from ._faults import fault_point
+from ._faults import armed, fault_point
 from ._io import atomic_write
 from .checkpoint import save_checkpoint, unwrap
 from .data import derive_seed, preserved_rng, sequential_loader, training_loader
@@ -276,7 +276,8 @@ class Generation:
             raise TypeError(f"finish() needs the trained nn.Module, but got {type(model).__name__}")
         setup = self._setup
         seed = derive_seed(setup.seed, self.index, 1)
-        train = predict(model, setup.train_loader, seed, fault=f"gen{self.index}")
+        fault = f"gen{self.index}" if armed("teacher") else None
+        train = predict(model, setup.train_loader, seed, fault=fault)
         heldout = predict(model, setup.heldout_loader, seed)
         test = predict(model, setup.test_loader, seed) if setup.test_loader is not None else None
         metric = setup.metric
