@@ -271,9 +271,9 @@ def lineage_overhead(epochs: int, work: Path) -> dict[str, Any]:
     )
     original = filial.generation.predict
 
-    def timed_predict(model, loader, seed, fault=None):
+    def timed_predict(model, loader, seed, fault=None, replay=None):
         start = time.perf_counter()
-        result = original(model, loader, seed, fault)
+        result = original(model, loader, seed, fault, replay)
         if loader is train:
             spent["teacher"] += time.perf_counter() - start
         return result

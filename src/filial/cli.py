@@ -117,10 +117,10 @@ def plan(recipe_path: str, overrides: Sequence[str], run_dir: str | None) -> Pla
         StopRule(g["max"], g["patience"], g["min_gain"])
     except ValueError as exc:
         raise recipes.RecipeError(f"[generations]: {exc}") from exc
-    if g["views"] != 1:
+    if g["views"] != 1 and g["teacher"] == "online":
         raise recipes.RecipeError(
-            "generations.views: several views per sample need replayed augmentation, which this "
-            "version of filial does not have yet; use views = 1"
+            "generations.views caches several augmented views per sample, but teacher = "
+            "'online' caches none; use views = 1 with it"
         )
     return Plan(recipe, train, heldout, test, model_fn)
 

@@ -13,6 +13,12 @@ vectorised gather reads the batch's rows from the :class:`~filial.store.TargetSt
 
 All of them pickle (no lambdas, no open files) so DataLoader workers started with ``spawn``
 (the default on macOS) work; the store opens its memory map lazily in each process.
+
+Replayed views (:class:`Replay`): a cached target is right only for the exact input the teacher
+saw. For a dataset with random augmentation, sample ``i`` in view ``v`` is fetched with torch's,
+Python's and numpy's global generators seeded from ``(seed, i, v)``, so the teacher pass and every
+student epoch see the same tensors for ``(i, v)``. A batch sampler index then carries the view:
+``code = i * views + v``.
 """
 
 from __future__ import annotations
@@ -27,7 +33,7 @@ from typing import Any
 
 import numpy as np
 import torch
-from torch.utils.data import DataLoader, Dataset, IterableDataset
+from torch.utils.data import BatchSampler, DataLoader, Dataset, IterableDataset, SequentialSampler
 
 from .errors import InputError
 from .losses import TopKTargets
@@ -92,27 +98,75 @@ def split_pair(batch: Any) -> tuple[Any, Any]:
     raise LoaderContractError(f"{_PAIR_CONTRACT} The batch was {found}.")
 
 
+_MASK64 = (1 << 64) - 1
+
+
+@dataclass(frozen=True)
+class Replay:
+    """Fetch sample ``i`` in view ``v`` under generators seeded from ``(seed, i, v)``.
+
+    >>> Replay(seed=7, views=3).decode([0, 4, 8])
+    ([0, 1, 2], [0, 1, 2])
+    """
+
+    seed: int
+    views: int
+
+    def seed_of(self, index: int, view: int) -> int:
+        """The 31-bit seed of sample ``index`` in ``view``: the SplitMix64 finaliser (Steele,
+        Lea and Flood 2014, "Fast splittable pseudorandom number generators") of the pair's
+        position after the run's seed; a few integer operations per sample where a
+        SeedSequence would cost ~20 us.
+
+        >>> Replay(seed=7, views=3).seed_of(5, 1) == Replay(seed=7, views=3).seed_of(5, 1)
+        True
+        """
+        z = (self.seed * 0x9E3779B97F4A7C15 + index * self.views + view + 1) & _MASK64
+        z = ((z ^ (z >> 30)) * 0xBF58476D1CE4E5B9) & _MASK64
+        z = ((z ^ (z >> 27)) * 0x94D049BB133111EB) & _MASK64
+        return (z ^ (z >> 31)) >> 33
+
+    def decode(self, codes: Sequence[int]) -> tuple[list[int], list[int]]:
+        """Split batch-sampler codes ``i * views + v`` into sample indices and views."""
+        pairs = [divmod(int(code), self.views) for code in codes]
+        return [i for i, _ in pairs], [v for _, v in pairs]
+
+
 class _Fetched:
-    """A batch's samples with their dataset indices, on their way to :class:`IndexedCollate`."""
+    """A batch's samples with their dataset indices (and views), on their way to
+    :class:`IndexedCollate`. ``codes`` are what the batch sampler gave."""
 
-    __slots__ = ("indices", "samples")
+    __slots__ = ("codes", "indices", "samples", "views")
 
-    def __init__(self, indices: Sequence[int], samples: Sequence[Any]) -> None:
+    def __init__(
+        self,
+        indices: Sequence[int],
+        samples: Sequence[Any],
+        views: Sequence[int] | None = None,
+        codes: Sequence[int] | None = None,
+    ) -> None:
         self.indices = indices
         self.samples = samples
+        self.views = views
+        self.codes = indices if codes is None else codes
 
 
 class IndexedDataset(Dataset):
-    """The user's map-style dataset, fetching whole batches together with their indices."""
+    """The user's map-style dataset, fetching whole batches together with their indices.
 
-    def __init__(self, dataset: Dataset) -> None:
+    With a :class:`Replay` the indices it is given are codes ``i * views + v`` and every sample is
+    fetched under its own seeds.
+    """
+
+    def __init__(self, dataset: Dataset, replay: Replay | None = None) -> None:
         object.__setattr__(self, "_filial_wrapped", dataset)
+        object.__setattr__(self, "_filial_replay", replay)
 
     # Note: transparent attributes. A worker_init_fn configures its worker's copy through
     # get_worker_info().dataset, which is this wrapper: reads and writes of any other name go
     # to the user's dataset (which may itself have a ``dataset`` attribute, e.g. a Subset).
     def __getattr__(self, name: str) -> Any:
-        if name == "_filial_wrapped":  # not set yet (while unpickling): no recursion
+        if name.startswith("_filial_"):  # not set yet (while unpickling): no recursion
             raise AttributeError(name)
         return getattr(self._filial_wrapped, name)
 
@@ -130,9 +184,62 @@ class IndexedDataset(Dataset):
 
     def __getitems__(self, indices: Sequence[int]) -> _Fetched:
         dataset = self._filial_wrapped
-        inner = getattr(dataset, "__getitems__", None)
-        samples = inner(indices) if inner else [dataset[i] for i in indices]
-        return _Fetched(indices, samples)
+        replay: Replay | None = self._filial_replay
+        if replay is None:
+            inner = getattr(dataset, "__getitems__", None)
+            samples = inner(indices) if inner else [dataset[i] for i in indices]
+            return _Fetched(indices, samples)
+        # Note: replaying augmentation. Each sample is fetched right after seeding torch's,
+        # Python's and numpy's global generators from (seed, i, v), so whatever random crop or
+        # flip the dataset draws is the same in the teacher pass and in every student epoch, in
+        # any worker. One fork per batch (not per sample) keeps the caller's streams where they
+        # were: dropout, initialisation and the user's samplers draw exactly as without replay.
+        samples_at, views = replay.decode(indices)
+        samples = []
+        with preserved_rng():
+            for i, v in zip(samples_at, views, strict=True):
+                _seed_globals(replay.seed_of(i, v))
+                samples.append(dataset[i])
+        return _Fetched(samples_at, samples, views, codes=indices)
+
+
+def _seed_globals(seed: int) -> None:
+    # The CPU generator only: torch.manual_seed also visits every accelerator's generators and
+    # costs ~0.2 ms, more than many samples' whole augmentation; datasets augment on the CPU.
+    torch.default_generator.manual_seed(seed)
+    random.seed(seed)
+    np.random.seed(seed)
+
+
+class ViewChoice:
+    """The user's batch sampler, with one of ``views`` views drawn for every sample it yields.
+
+    Yields codes ``i * views + v``. The views come from a private generator seeded from ``seed``
+    and the epoch (counted by iterations), so a student sees a new mix of views every epoch and
+    the user's generators do not move.
+    """
+
+    def __init__(self, batch_sampler: Any, views: int, seed: int) -> None:
+        self.batch_sampler = batch_sampler
+        self.views = views
+        self.seed = seed
+        self.epoch = 0
+
+    def __len__(self) -> int:
+        return len(self.batch_sampler)
+
+    def __getattr__(self, name: str) -> Any:
+        if name == "batch_sampler":
+            raise AttributeError(name)
+        return getattr(self.batch_sampler, name)
+
+    def __iter__(self) -> Iterator[list[int]]:
+        generator = torch.Generator().manual_seed(derive_seed(self.seed, self.epoch))
+        self.epoch += 1
+        views = self.views
+        for batch in self.batch_sampler:
+            chosen = torch.randint(views, (len(batch),), generator=generator).tolist()
+            yield [int(i) * views + v for i, v in zip(batch, chosen, strict=True)]
 
 
 class IndexedCollate:
@@ -158,10 +265,11 @@ class IndexedCollate:
             )
         inputs, labels = split_pair(self.collate_fn(fetched.samples))
         if self.keep_indices:
-            return list(fetched.indices), inputs, labels
+            return list(fetched.codes), inputs, labels
         if self.store is None:
             return inputs, labels, None
-        rows = self.store.gather(np.asarray(fetched.indices, dtype=np.int64))
+        views = None if fetched.views is None else np.asarray(fetched.views, dtype=np.int64)
+        rows = self.store.gather(np.asarray(fetched.indices, dtype=np.int64), views)
         if isinstance(rows, tuple):  # a top-k store: the k values and their classes
             return inputs, labels, TopKTargets(torch.from_numpy(rows[0]), torch.from_numpy(rows[1]))
         return inputs, labels, torch.from_numpy(rows)
@@ -183,16 +291,26 @@ def _common_settings(loader: DataLoader) -> dict[str, Any]:
     return settings
 
 
-def training_loader(loader: DataLoader, store: TargetStore | None) -> DataLoader:
+def training_loader(
+    loader: DataLoader,
+    store: TargetStore | None,
+    replay: Replay | None = None,
+    choice_seed: int = 0,
+) -> DataLoader:
     """The user's loader, rebuilt to yield ``(inputs, labels, targets)``.
 
     It keeps the user's batch sampler (so shuffling, custom samplers and ``drop_last`` behave and
-    draw random numbers exactly as before), generator, workers and collate function.
+    draw random numbers exactly as before), generator, workers and collate function. With a
+    ``replay`` the samples are fetched in replayed views; with several views, one is drawn per
+    sample and epoch (:class:`ViewChoice`, seeded from ``choice_seed``).
     """
     check_loader(loader, "train_loader")
+    batch_sampler = loader.batch_sampler
+    if replay is not None and replay.views > 1:
+        batch_sampler = ViewChoice(batch_sampler, replay.views, choice_seed)
     return DataLoader(
-        IndexedDataset(loader.dataset),
-        batch_sampler=loader.batch_sampler,
+        IndexedDataset(loader.dataset, replay),
+        batch_sampler=batch_sampler,
         collate_fn=IndexedCollate(loader.collate_fn, store),
         generator=loader.generator,
         persistent_workers=loader.persistent_workers,
@@ -207,23 +325,25 @@ def batch_size_of(loader: DataLoader, default: int = 256) -> int:
     return int(size) if isinstance(size, int) and size > 0 else default
 
 
-def sequential_loader(loader: DataLoader, seed: int) -> DataLoader:
+def sequential_loader(loader: DataLoader, seed: int, replay: Replay | None = None) -> DataLoader:
     """The user's loader over the same dataset in index order, yielding ``(indices, x, y)``.
 
     Used for the teacher pass and evaluations: every sample once, in a fixed order, whatever the
     user's sampler does. A private generator seeds the workers, so building it draws nothing from
-    the user's global random state.
+    the user's global random state. With a ``replay`` it goes over every (sample, view) in the
+    order of their codes ``i * views + v``, and the indices it yields are those codes.
     """
     generator = torch.Generator()
     generator.manual_seed(seed)
     settings = _common_settings(loader)
     if "in_order" in settings:
         settings["in_order"] = True  # the passes fill their buffers in index order
+    count = len(loader.dataset) * (replay.views if replay is not None else 1)  # type: ignore[arg-type]
     return DataLoader(
-        IndexedDataset(loader.dataset),
-        batch_size=batch_size_of(loader),
-        shuffle=False,
-        drop_last=False,
+        IndexedDataset(loader.dataset, replay),
+        batch_sampler=BatchSampler(
+            SequentialSampler(range(count)), batch_size_of(loader), drop_last=False
+        ),
         collate_fn=IndexedCollate(loader.collate_fn, keep_indices=True),
         generator=generator,
         **settings,
@@ -271,7 +391,8 @@ class Probe:
     fingerprint: str
     inputs: Any  # the probe samples' inputs and labels, collated by the user's collate_fn
     labels: Any
-    deterministic: bool  # the same index gave the same inputs twice
+    deterministic: bool  # the same index under the same seeds gave the same inputs twice
+    varies: bool = False  # other seeds gave other inputs: the dataset augments at random
 
 
 def probe(loader: DataLoader, probes: int = 64) -> Probe:
@@ -280,30 +401,34 @@ def probe(loader: DataLoader, probes: int = 64) -> Probe:
     The samples are fetched with torch's, Python's and numpy's generators seeded to 0 (inside a
     fork, so the caller's streams do not move), which makes common random augmentation
     repeatable. Inputs enter the fingerprint only when a second fetch gives the same bytes; a
-    dataset that still changes (its own private random state) is fingerprinted by its labels.
+    dataset that still changes (its own private random state) is fingerprinted by its labels. A
+    third fetch under seed 1 tells whether the samples depend on the global generators at all.
     """
     dataset = loader.dataset
     size = len(dataset)
     indices = sorted({int(i) for i in np.linspace(0, size - 1, num=min(probes, size))})
 
-    def fetch(chosen: list[int]) -> tuple[Any, Any]:
-        torch.manual_seed(0)
-        random.seed(0)
-        np.random.seed(0)
-        return split_pair(loader.collate_fn([dataset[i] for i in chosen]))
+    def fetch(seed: int) -> tuple[Any, Any]:
+        _seed_globals(seed)
+        return split_pair(loader.collate_fn([dataset[i] for i in indices]))
+
+    def digest_of(value: Any) -> Any:
+        digest = hashlib.sha256()
+        _tensor_bytes(value, digest)
+        return digest
 
     with preserved_rng():
-        inputs, labels = fetch(indices)
-        again, _ = fetch(indices)
-    first_digest, again_digest = hashlib.sha256(), hashlib.sha256()
-    _tensor_bytes(inputs, first_digest)
-    _tensor_bytes(again, again_digest)
-    deterministic = first_digest.digest() == again_digest.digest()
+        inputs, labels = fetch(0)
+        again, _ = fetch(0)
+        other, _ = fetch(1)
+    first_digest = digest_of(inputs)
+    deterministic = first_digest.digest() == digest_of(again).digest()
+    varies = first_digest.digest() != digest_of(other).digest()
     digest = hashlib.sha256(f"n={size};probes={len(indices)}".encode())
     _tensor_bytes(labels, digest)
     if deterministic:
         digest.update(first_digest.digest())
-    return Probe(digest.hexdigest(), inputs, labels, deterministic)
+    return Probe(digest.hexdigest(), inputs, labels, deterministic, varies)
 
 
 def fingerprint(loader: DataLoader, probes: int = 64) -> str:

@@ -26,7 +26,7 @@ from torch.utils.data import DataLoader
 from ._faults import armed, fault_point
 from ._io import atomic_write
 from .checkpoint import save_checkpoint, unwrap
-from .data import derive_seed, preserved_rng, sequential_loader, training_loader
+from .data import Replay, derive_seed, preserved_rng, sequential_loader, training_loader
 from .losses import StudentLoss
 from .metrics import Metric
 from .store import TargetStore
@@ -51,6 +51,7 @@ class Setup:
     seed: int
     write_targets: bool = True  # False for a model nobody distils from (the matched baseline)
     top_k: int | None = None  # keep only the k largest outputs per sample (ce only)
+    replay: Replay | None = None  # the training data augment: fetch (sample, view) under seeds
 
 
 @dataclass
@@ -82,16 +83,22 @@ def model_device(model: nn.Module) -> torch.device:
 
 
 def predict(
-    model: nn.Module, loader: DataLoader, seed: int, fault: str | None = None
+    model: nn.Module,
+    loader: DataLoader,
+    seed: int,
+    fault: str | None = None,
+    replay: Replay | None = None,
 ) -> Predictions:
     """Outputs of ``model`` (in eval mode, restored afterwards) over ``loader``'s whole dataset.
 
     The batches come in index order, so each one fills the next rows of a buffer kept on the
     model's device; it is copied to the CPU once, at the end (no synchronisation per batch).
+    With a ``replay`` the rows are the (sample, view) pairs in code order, ``i * views + v``.
     """
     module = unwrap(model)
     device = model_device(module)
-    size = len(loader.dataset)  # type: ignore[arg-type]
+    views = replay.views if replay is not None else 1
+    size = len(loader.dataset) * views  # type: ignore[arg-type]
     outputs: torch.Tensor | None = None
     labels: torch.Tensor | None = None
     filled = 0
@@ -101,7 +108,7 @@ def predict(
         # A dataset with random augmentation draws from the global generators in this process
         # when the loader has no workers; the evaluation must not move the user's streams.
         with preserved_rng(), torch.inference_mode():
-            for indices, inputs, batch_labels in sequential_loader(loader, seed):
+            for indices, inputs, batch_labels in sequential_loader(loader, seed, replay):
                 if fault is not None:
                     fault_point("teacher", fault)
                 out = module(move_to(inputs, device))
@@ -160,13 +167,30 @@ def _finite_module(model: nn.Module) -> bool:
     return bool(torch.stack(checks).all()) if checks else True  # one device sync
 
 
+def training_pass(
+    model: nn.Module, setup: Setup, seed: int, fault: str | None = None
+) -> tuple[Predictions, torch.Tensor]:
+    """The teacher pass over the training set: its outputs ``(N, views, C)``, and the
+    predictions of view 0 (for the training-set figures of the record)."""
+    replay = setup.replay
+    if replay is not None and not setup.write_targets:
+        replay = Replay(replay.seed, 1)  # nobody reads the views: view 0 is enough
+    train = predict(model, setup.train_loader, seed, fault=fault, replay=replay)
+    views = replay.views if replay is not None else 1
+    outputs = train.outputs.view(-1, views, train.outputs.shape[1])
+    return Predictions(outputs[:, 0], train.labels[::views]), outputs
+
+
 def write_targets(
     setup: Setup, directory: Path, outputs: torch.Tensor, teacher_sha256: str
 ) -> TargetStore:
-    """Write a teacher's training-set outputs ``(N, C)`` as the store in ``directory``."""
-    rows = outputs.numpy()[:, None, :]  # (N, 1, C): a view, no copy
-    if setup.views > 1:
-        rows = rows.repeat(setup.views, axis=1)
+    """Write a teacher's training-set outputs ``(N, views, C)`` as the store in ``directory``."""
+    rows = outputs.numpy()
+    if rows.ndim != 3 or rows.shape[1] != setup.views:
+        raise ValueError(
+            f"the teacher pass gave outputs of shape {tuple(rows.shape)}, but the store needs "
+            f"(N, {setup.views}, C)"
+        )
     return TargetStore.write(
         directory,
         rows,
@@ -254,7 +278,13 @@ class Generation:
                     training_loader(self._setup.train_loader, None), self.teacher_model, self.model
                 )
             else:
-                self._loader = training_loader(self._setup.train_loader, self.store)
+                # A student reads cached targets, so its samples are replayed; generation 0
+                # (no store) trains on the user's own random augmentation.
+                replay = self._setup.replay if self.store is not None else None
+                choice = derive_seed(self._setup.seed, self.index, 4)
+                self._loader = training_loader(
+                    self._setup.train_loader, self.store, replay, choice_seed=choice
+                )
         return self._loader
 
     def loss(
@@ -277,13 +307,13 @@ class Generation:
         setup = self._setup
         seed = derive_seed(setup.seed, self.index, 1)
         fault = f"gen{self.index}" if armed("teacher") else None
-        train = predict(model, setup.train_loader, seed, fault=fault)
+        train, train_outputs = training_pass(model, setup, seed, fault=fault)
         heldout = predict(model, setup.heldout_loader, seed)
         test = predict(model, setup.test_loader, seed) if setup.test_loader is not None else None
         metric = setup.metric
         diverged = not (
             _finite_module(model)
-            and bool(torch.isfinite(train.outputs).all())
+            and bool(torch.isfinite(train_outputs).all())
             and bool(torch.isfinite(heldout.outputs).all())
         )
         record: dict[str, Any] = {
@@ -315,7 +345,7 @@ class Generation:
             for name in (TargetStore.MANIFEST, TargetStore.ARRAY, TargetStore.INDEX):
                 (self.directory / name).unlink(missing_ok=True)
         elif setup.write_targets:
-            write_targets(setup, self.directory, train.outputs, teacher_sha)
+            write_targets(setup, self.directory, train_outputs, teacher_sha)
         record["checkpoint"] = f"gen{self.index}/{CHECKPOINT_FILE}"
         record["checkpoint_sha256"] = teacher_sha
         record["epochs"] = list(self.history)

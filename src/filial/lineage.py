@@ -33,15 +33,15 @@ from tqdm.auto import tqdm
 
 from ._io import LockedError, RunLock, atomic_write, atomic_write_json, sweep_temporaries
 from .checkpoint import load_checkpoint
-from .data import check_loader, derive_seed, preserved_rng, probe
+from .data import Probe, Replay, check_loader, derive_seed, preserved_rng, probe
 from .errors import InputError
 from .generation import (
     HELDOUT_FILE,
     Generation,
     Predictions,
     Setup,
-    predict,
     probe_outputs,
+    training_pass,
     write_targets,
 )
 from .losses import StudentLoss
@@ -145,6 +145,10 @@ class Lineage:
     (only one that filial made) and starts over. ``progress`` prints one line per finished
     generation on stderr; warnings go through the ``logging`` logger ``"filial"``.
     ``tensorboard`` is the folder for TensorBoard runs (True: ``run_dir/tb``; False: none).
+
+    Training data that augment at random (from torch's, Python's or numpy's global generators)
+    are replayed for the students: each sample comes in ``views`` fixed augmented views, each with
+    its own cached target, and every epoch draws one per sample (see :class:`filial.data.Replay`).
     """
 
     def __init__(
@@ -208,13 +212,6 @@ class Lineage:
                 )
             )
         views = attempt(lambda: as_count(views, "views", minimum=1))
-        if views is not None and views != 1:
-            problems.append(
-                ValueError(
-                    f"views={views}: several cached views per sample need replayed augmentation, "
-                    "which this version of filial does not have yet; use views=1"
-                )
-            )
         if store_dtype not in STORE_DTYPES:
             problems.append(
                 ValueError(f"store_dtype must be one of {STORE_DTYPES}, but got {store_dtype!r}")
@@ -239,6 +236,14 @@ class Lineage:
                     "one or the other."
                 )
             )
+        elif teacher_mode == "online" and views not in (None, 1):
+            problems.append(
+                ValueError(
+                    f"views={views} caches several augmented views per sample; "
+                    "teacher_mode='online' caches none (its teacher sees every augmented batch). "
+                    "Use views=1 with it."
+                )
+            )
         if metric is not None and not callable(metric):
             problems.append(TypeError(f"metric must be callable or None, but got {metric!r}"))
         seed = attempt(lambda: as_count(seed, "seed", minimum=0))
@@ -246,6 +251,14 @@ class Lineage:
         if not problems:
             train_probe = attempt(lambda: probe(train_loader))
             heldout_probe = attempt(lambda: probe(heldout_loader))
+        if train_probe is not None and views is not None and teacher_mode == "cached":
+            attempt(lambda: _check_augmentation(train_probe, views))
+        if heldout_probe is not None and (heldout_probe.varies or not heldout_probe.deterministic):
+            log.warning(
+                "the held-out samples change from fetch to fetch (random augmentation in the "
+                "held-out dataset?), so held-out figures carry that noise too; build the "
+                "held-out dataset without augmentation"
+            )
         labels = getattr(train_probe, "labels", None)
         if isinstance(labels, torch.Tensor) and targets == "ce" and labels.is_floating_point():
             problems.append(
@@ -314,6 +327,7 @@ class Lineage:
             seed=seed,
             top_k=top_k,
             write_targets=teacher_mode != "online",  # online students never read a cache
+            replay=_replay(train_probe, views, seed) if teacher_mode == "cached" else None,
         )
         self._records: list[dict[str, Any]] = []
         self._decision: dict[str, Any] | None = None
@@ -668,7 +682,7 @@ class Lineage:
             )
         model = load_generation(self.model_fn, self.run_dir, record)
         seed = derive_seed(self.settings["seed"], record["generation"], 1)
-        outputs = predict(model, self._setup.train_loader, seed).outputs
+        outputs = training_pass(model, self._setup, seed)[1]
         return write_targets(self._setup, directory, outputs, record["checkpoint_sha256"])
 
     def _heldout_outputs(self, generation: int) -> torch.Tensor:
@@ -733,6 +747,44 @@ class Lineage:
             )
         )
         return record
+
+
+def _replay(train: Probe, views: int, seed: int) -> Replay | None:
+    """Replayed views when the training samples change with the random streams (or several views
+    are asked for); none for a deterministic dataset, which then costs no per-sample seeding."""
+    if views > 1 or (train.varies and train.deterministic):
+        return Replay(derive_seed(seed, 3), views)
+    return None
+
+
+_AUGMENTATION_WARNED: set[str] = set()
+
+
+def _check_augmentation(train: Probe, views: int) -> None:
+    """Refuse views that cannot be replayed; say once per dataset what a single view means."""
+    if not train.deterministic:
+        if views > 1:
+            raise ValueError(
+                f"views={views} replays random augmentation by seeding torch's, Python's and "
+                "numpy's global generators before each sample, but the training samples change "
+                "even under the same seeds (the dataset draws from a generator of its own). Draw "
+                "augmentation from the global generators, or use teacher_mode='online'."
+            )
+        if train.fingerprint not in _AUGMENTATION_WARNED:
+            _AUGMENTATION_WARNED.add(train.fingerprint)
+            log.warning(
+                "the training samples change from fetch to fetch even under the same seeds, so "
+                "cached targets cannot match the inputs a student sees; use teacher_mode='online' "
+                "for exact targets"
+            )
+    elif train.varies and views == 1 and train.fingerprint not in _AUGMENTATION_WARNED:
+        _AUGMENTATION_WARNED.add(train.fingerprint)
+        log.warning(
+            "the training samples change from fetch to fetch (random augmentation): with views=1 "
+            "each student sees every sample in a single replayed augmented view, the one its "
+            "cached target was made for. Pass views=4 (say) for more views per sample, or "
+            "teacher_mode='online' for a fresh augmentation with an exact target every step."
+        )
 
 
 def _foreign_entries(directory: Path) -> list[Path]:
