@@ -187,10 +187,14 @@ def test_replay_leaves_the_users_random_streams_alone(tmp_path):
     assert not torch.equal(replayed[0][0], plain[0][0])  # the check can tell streams apart
 
 
-def test_a_deterministic_dataset_is_not_replayed(tmp_path):
-    lineage = _lineage(tmp_path, blobs(48), views=1)
+def test_a_deterministic_dataset_is_not_replayed(tmp_path, caplog):
+    lineage = _lineage(tmp_path / "a", blobs(48), views=1)
     assert lineage._setup.replay is None  # no per-sample seeding on the hot path
     lineage.close()
+    caplog.set_level(logging.WARNING, logger="filial")
+    copies = _lineage(tmp_path / "b", blobs(48), views=2)  # allowed, but said to be waste
+    assert any("2 copies of each target" in r.getMessage() for r in caplog.records)
+    copies.close()
 
 
 def test_an_augmenting_dataset_with_one_view_is_replayed_and_said_once(tmp_path, caplog):

@@ -777,6 +777,15 @@ def _check_augmentation(train: Probe, views: int) -> None:
                 "cached targets cannot match the inputs a student sees; use teacher_mode='online' "
                 "for exact targets"
             )
+    elif not train.varies and views > 1:
+        log.warning(
+            "views=%d: the training samples do not change with the random seeds, so the %d views "
+            "of a sample are the same input and the cache holds %d copies of each target; "
+            "views=1 gives the same training at a fraction of the teacher pass",
+            views,
+            views,
+            views,
+        )
     elif train.varies and views == 1 and train.fingerprint not in _AUGMENTATION_WARNED:
         _AUGMENTATION_WARNED.add(train.fingerprint)
         log.warning(
