@@ -6,6 +6,7 @@ torchvision transforms (torch), ``random``-based and numpy-based augmentation co
 
 from __future__ import annotations
 
+import json
 import logging
 import random
 
@@ -17,8 +18,16 @@ from torch import nn
 from torch.utils.data import DataLoader, Dataset
 
 import filial
-from filial.data import Replay, sequential_loader, training_loader
+import filial.lineage
+from filial.data import Replay, probe, sequential_loader, training_loader
+from filial.errors import InputError
 from filial.lineage import load_generation
+
+
+@pytest.fixture(autouse=True)
+def _fresh_warnings(monkeypatch):
+    """Each test sees the once-per-dataset augmentation warnings anew."""
+    monkeypatch.setattr(filial.lineage, "_AUGMENTATION_WARNED", set())
 
 
 class Augmented(Dataset):
@@ -36,6 +45,28 @@ class Augmented(Dataset):
         if random.random() < 0.5:
             x = -x
         return x * float(1.0 + 0.1 * np.random.randn()), y
+
+
+class WithIndex(Augmented):
+    """Augmented samples labelled with their own index (to check which sample came)."""
+
+    def __getitem__(self, index: int):
+        return super().__getitem__(index)[0], index
+
+
+class RarelyFlipped(Augmented):
+    """A sign flip for one sample in two hundred: augmentation a comparison of a few samples
+    would miss, but a draw from the generator all the same."""
+
+    def __getitem__(self, index: int):
+        x, y = self.base[index]
+        return (-x if random.random() < 0.005 else x), y
+
+
+def noisy_collate(samples):
+    """A collate_fn that augments the whole batch (torch's global generator)."""
+    inputs = torch.stack([x for x, _ in samples])
+    return inputs + 0.1 * torch.randn(inputs.shape), torch.stack([y for _, y in samples])
 
 
 class OwnGenerator(Augmented):
@@ -108,7 +139,7 @@ def test_targets_are_the_teachers_outputs_on_the_very_inputs_of_each_batch(tmp_p
     store = filial.TargetStore(lineage.run_dir / "gen0")
     assert store.shape == (48, views, 3)
     # Each sample comes in at most `views` distinct inputs; with three views and three epochs a
-    # sample shows more than one of them (the chance that all 48 show one is 48 * (1/9) ** 1).
+    # sample shows more than one of them (the chance that all 48 show only one is (1/9) ** 48).
     if views == 1:
         assert len(distinct) == 48
     else:
@@ -117,22 +148,25 @@ def test_targets_are_the_teachers_outputs_on_the_very_inputs_of_each_batch(tmp_p
 
 def test_a_view_is_the_same_tensors_in_the_teacher_pass_and_in_training():
     """The replayed fetch of (i, v) does not depend on the order, the batch or the process."""
-    dataset = Augmented(n=12)
+    dataset = WithIndex(n=12)
     replay = Replay(seed=11, views=2)
     source = DataLoader(dataset, batch_size=5)
     by_code = {}
-    for codes, inputs, _ in sequential_loader(source, seed=0, replay=replay):
+    for codes, inputs, labels in sequential_loader(source, seed=0, replay=replay):
+        assert [c // 2 for c in codes] == labels.tolist()
         by_code.update({c: row for c, row in zip(codes, inputs, strict=True)})
     assert sorted(by_code) == list(range(24))
     assert not torch.equal(by_code[0], by_code[1])  # two views of sample 0 differ
     shuffled = training_loader(_train_loader(dataset, workers=2), None, replay, choice_seed=3)
-    checked = 0
-    for inputs, _, _ in shuffled:
-        for row in inputs:
-            # the row must be one of its sample's two views
-            assert any(torch.equal(row, by_code[c]) for c in by_code)
-            checked += 1
-    assert checked == 12
+    shown: dict[int, set[int]] = {i: set() for i in range(12)}
+    for _ in range(4):
+        for inputs, labels, _ in shuffled:
+            for row, i in zip(inputs, labels.tolist(), strict=True):
+                view = [v for v in (0, 1) if torch.equal(row, by_code[2 * i + v])]
+                assert len(view) == 1  # exactly one of this sample's own two views
+                shown[i].update(view)
+    # Each epoch draws the views anew: over four epochs most samples show both.
+    assert sum(len(views) == 2 for views in shown.values()) >= 6
 
 
 class Dropping(nn.Module):
@@ -228,10 +262,56 @@ def test_views_go_with_the_cache_only(tmp_path):
 def test_top_k_targets_keep_every_view(tmp_path):
     lineage = _lineage(tmp_path, Augmented(), views=2, top_k=2)
     for gen in lineage:
-        for inputs, _, targets in gen.loader:
-            if gen.index == 1:
-                assert targets.values.shape == targets.classes.shape == (len(inputs), 2)
+        if gen.index == 1:
+            teacher = load_generation(lineage.model_fn, lineage.run_dir, lineage.result.records[0])
+            for inputs, _, targets in gen.loader:
+                with torch.no_grad():
+                    expected = torch.topk(teacher.eval()(inputs), 2, dim=1)  # torch's own top-k
+                torch.testing.assert_close(targets.values, expected.values)
+                assert torch.equal(targets.classes, expected.indices)
         gen.finish(gen.model)
     store = filial.TargetStore(lineage.run_dir / "gen0")
     assert store.shape == (48, 2, 2) and store.top_k == 2  # (N, views, k)
     assert store.manifest["classes"] == 3 and store.manifest["views"] == 2
+
+
+def test_rare_augmentation_is_seen_from_the_generators_state():
+    """One flip in two hundred changes none of the 48 probe samples under another seed most of
+    the time, but the draw itself moves Python's generator."""
+    seen = probe(DataLoader(RarelyFlipped(), batch_size=8))
+    assert seen.varies and seen.replayable
+    assert not probe(DataLoader(blobs(48), batch_size=8)).varies
+
+
+def test_augmentation_in_the_collate_cannot_be_replayed(tmp_path, caplog):
+    def loader():
+        return DataLoader(blobs(48, seed=1), batch_size=8, collate_fn=noisy_collate)
+
+    assert probe(loader()).collate_draws and not probe(loader()).replayable
+    heldout = DataLoader(blobs(24, seed=2), batch_size=12)
+    with pytest.raises(ValueError, match="collate_fn draws .* into the dataset"):
+        filial.Lineage(TinyNet(), loader(), heldout, run_dir=tmp_path / "a", views=2)
+    caplog.set_level(logging.WARNING, logger="filial")
+    lineage = filial.Lineage(
+        TinyNet(), loader(), heldout, run_dir=tmp_path / "b", progress=False, tensorboard=False
+    )
+    assert lineage._setup.replay is None and lineage.settings["replayed"] is False
+    assert any("collate_fn draws" in r.getMessage() for r in caplog.records)
+    lineage.close()
+
+
+def test_a_run_cached_without_replay_is_not_resumed_with_it(tmp_path):
+    """Targets of unreplayed augmentation (a run written before replay existed) must not be
+    read as replayed views."""
+    lineage = _lineage(tmp_path, Augmented(), views=1)
+    assert lineage.settings["replayed"] is True
+    for gen in lineage:
+        gen.finish(gen.model)
+        break
+    lineage.close()
+    state_path = lineage.state_path
+    state = json.loads(state_path.read_text())
+    del state["settings"]["replayed"]  # as an older filial wrote it
+    state_path.write_text(json.dumps(state))
+    with pytest.raises(InputError, match="replayed: False in the run, True now"):
+        _lineage(tmp_path, Augmented(), views=1)

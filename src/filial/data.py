@@ -101,6 +101,21 @@ def split_pair(batch: Any) -> tuple[Any, Any]:
 _MASK64 = (1 << 64) - 1
 
 
+def _mix(z: int) -> int:
+    """The SplitMix64 finaliser of ``z`` + the golden-ratio increment (64-bit).
+
+    The first two outputs of SplitMix64 started from state 0 (values of the reference
+    ``splitmix64.c`` by Vigna, from memory):
+
+    >>> hex(_mix(0)), hex(_mix(0x9E3779B97F4A7C15))
+    ('0xe220a8397b1dcdaf', '0x6e789e6aa1b965f4')
+    """
+    z = (z + 0x9E3779B97F4A7C15) & _MASK64
+    z = ((z ^ (z >> 30)) * 0xBF58476D1CE4E5B9) & _MASK64
+    z = ((z ^ (z >> 27)) * 0x94D049BB133111EB) & _MASK64
+    return z ^ (z >> 31)
+
+
 @dataclass(frozen=True)
 class Replay:
     """Fetch sample ``i`` in view ``v`` under generators seeded from ``(seed, i, v)``.
@@ -113,18 +128,15 @@ class Replay:
     views: int
 
     def seed_of(self, index: int, view: int) -> int:
-        """The 31-bit seed of sample ``index`` in ``view``: the SplitMix64 finaliser (Steele,
-        Lea and Flood 2014, "Fast splittable pseudorandom number generators") of the pair's
-        position after the run's seed; a few integer operations per sample where a
-        SeedSequence would cost ~20 us.
+        """The 31-bit seed of sample ``index`` in ``view``, through two rounds of the SplitMix64
+        finaliser (Steele, Lea and Flood 2014, "Fast splittable pseudorandom number
+        generators"): a few integer operations per sample where a SeedSequence costs ~20 us.
+        It does not depend on ``views``: view 0 of a sample is the same in every run of a seed.
 
-        >>> Replay(seed=7, views=3).seed_of(5, 1) == Replay(seed=7, views=3).seed_of(5, 1)
+        >>> Replay(seed=7, views=3).seed_of(5, 0) == Replay(seed=7, views=1).seed_of(5, 0)
         True
         """
-        z = (self.seed * 0x9E3779B97F4A7C15 + index * self.views + view + 1) & _MASK64
-        z = ((z ^ (z >> 30)) * 0xBF58476D1CE4E5B9) & _MASK64
-        z = ((z ^ (z >> 27)) * 0x94D049BB133111EB) & _MASK64
-        return (z ^ (z >> 31)) >> 33
+        return _mix(_mix(self.seed * 0x9E3779B97F4A7C15 + index) + view) >> 33
 
     def decode(self, codes: Sequence[int]) -> tuple[list[int], list[int]]:
         """Split batch-sampler codes ``i * views + v`` into sample indices and views."""
@@ -392,7 +404,27 @@ class Probe:
     inputs: Any  # the probe samples' inputs and labels, collated by the user's collate_fn
     labels: Any
     deterministic: bool  # the same index under the same seeds gave the same inputs twice
-    varies: bool = False  # other seeds gave other inputs: the dataset augments at random
+    varies: bool = False  # fetching drew from the global generators: random augmentation
+    collate_draws: bool = False  # the collate_fn drew from them (after any replayed fetch)
+
+    @property
+    def replayable(self) -> bool:
+        """Seeding the global generators before each fetch fixes the inputs a model sees."""
+        return self.deterministic and not self.collate_draws
+
+
+def _global_states() -> tuple[Any, ...]:
+    legacy = np.random.get_state()
+    return (torch.get_rng_state(), random.getstate(), legacy[1].copy(), legacy[2:])
+
+
+def _moved(before: tuple[Any, ...], after: tuple[Any, ...]) -> bool:
+    return not (
+        torch.equal(before[0], after[0])
+        and before[1] == after[1]
+        and np.array_equal(before[2], after[2])
+        and before[3] == after[3]
+    )
 
 
 def probe(loader: DataLoader, probes: int = 64) -> Probe:
@@ -401,16 +433,21 @@ def probe(loader: DataLoader, probes: int = 64) -> Probe:
     The samples are fetched with torch's, Python's and numpy's generators seeded to 0 (inside a
     fork, so the caller's streams do not move), which makes common random augmentation
     repeatable. Inputs enter the fingerprint only when a second fetch gives the same bytes; a
-    dataset that still changes (its own private random state) is fingerprinted by its labels. A
-    third fetch under seed 1 tells whether the samples depend on the global generators at all.
+    dataset that still changes (its own private random state) is fingerprinted by its labels.
+    Whether fetching or collating draws from the global generators is read off their states, so
+    augmentation applied to one sample in a thousand is seen as surely as one applied to all.
     """
     dataset = loader.dataset
     size = len(dataset)
     indices = sorted({int(i) for i in np.linspace(0, size - 1, num=min(probes, size))})
 
-    def fetch(seed: int) -> tuple[Any, Any]:
+    def fetch(seed: int) -> tuple[Any, Any, bool, bool]:
         _seed_globals(seed)
-        return split_pair(loader.collate_fn([dataset[i] for i in indices]))
+        before = _global_states()
+        samples = [dataset[i] for i in indices]
+        fetched = _global_states()
+        inputs, labels = split_pair(loader.collate_fn(samples))
+        return inputs, labels, _moved(before, fetched), _moved(fetched, _global_states())
 
     def digest_of(value: Any) -> Any:
         digest = hashlib.sha256()
@@ -418,17 +455,17 @@ def probe(loader: DataLoader, probes: int = 64) -> Probe:
         return digest
 
     with preserved_rng():
-        inputs, labels = fetch(0)
-        again, _ = fetch(0)
-        other, _ = fetch(1)
+        inputs, labels, fetch_draws, collate_draws = fetch(0)
+        again = fetch(0)[0]
+        other = fetch(1)[0]
     first_digest = digest_of(inputs)
     deterministic = first_digest.digest() == digest_of(again).digest()
-    varies = first_digest.digest() != digest_of(other).digest()
+    varies = fetch_draws or first_digest.digest() != digest_of(other).digest()
     digest = hashlib.sha256(f"n={size};probes={len(indices)}".encode())
     _tensor_bytes(labels, digest)
     if deterministic:
         digest.update(first_digest.digest())
-    return Probe(digest.hexdigest(), inputs, labels, deterministic, varies)
+    return Probe(digest.hexdigest(), inputs, labels, deterministic, varies, collate_draws)
 
 
 def fingerprint(loader: DataLoader, probes: int = 64) -> str:

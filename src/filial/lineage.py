@@ -59,7 +59,7 @@ BASELINE_DIR = "baseline"
 BASELINE_FILE = "baseline.json"
 TEACHER_MODES = ("cached", "online")
 # Settings added after the first format: a run written before them used these values.
-_SETTING_DEFAULTS = {"teacher_mode": "cached"}
+_SETTING_DEFAULTS: dict[str, Any] = {"teacher_mode": "cached", "replayed": False}
 # What a lineage writes in its run directory, and so all that fresh=True deletes.
 _WRITTEN_HERE = re.compile(r"lineage\.json|heldout_labels\.npy|gen\d+|baseline|tb")
 
@@ -253,7 +253,9 @@ class Lineage:
             heldout_probe = attempt(lambda: probe(heldout_loader))
         if train_probe is not None and views is not None and teacher_mode == "cached":
             attempt(lambda: _check_augmentation(train_probe, views))
-        if heldout_probe is not None and (heldout_probe.varies or not heldout_probe.deterministic):
+        if heldout_probe is not None and (
+            heldout_probe.varies or heldout_probe.collate_draws or not heldout_probe.deterministic
+        ):
             log.warning(
                 "the held-out samples change from fetch to fetch (random augmentation in the "
                 "held-out dataset?), so held-out figures carry that noise too; build the "
@@ -303,6 +305,8 @@ class Lineage:
             "store_dtype": store_dtype,
             "top_k": top_k,
             "teacher_mode": teacher_mode,
+            # Replayed targets and targets of unreplayed augmentation must not be mixed.
+            "replayed": teacher_mode == "cached" and _replay(train_probe, views, seed) is not None,
             "seed": seed,
             "metric": metric_name(metric),
             "model_fn": metric_name(model_fn),
@@ -327,7 +331,7 @@ class Lineage:
             seed=seed,
             top_k=top_k,
             write_targets=teacher_mode != "online",  # online students never read a cache
-            replay=_replay(train_probe, views, seed) if teacher_mode == "cached" else None,
+            replay=_replay(train_probe, views, seed) if self.settings["replayed"] else None,
         )
         self._records: list[dict[str, Any]] = []
         self._decision: dict[str, Any] | None = None
@@ -750,9 +754,9 @@ class Lineage:
 
 
 def _replay(train: Probe, views: int, seed: int) -> Replay | None:
-    """Replayed views when the training samples change with the random streams (or several views
+    """Replayed views when the training samples draw from the random streams (or several views
     are asked for); none for a deterministic dataset, which then costs no per-sample seeding."""
-    if views > 1 or (train.varies and train.deterministic):
+    if train.replayable and (views > 1 or train.varies):
         return Replay(derive_seed(seed, 3), views)
     return None
 
@@ -762,21 +766,27 @@ _AUGMENTATION_WARNED: set[str] = set()
 
 def _check_augmentation(train: Probe, views: int) -> None:
     """Refuse views that cannot be replayed; say once per dataset what a single view means."""
-    if not train.deterministic:
+    if not train.replayable:
+        if train.collate_draws:
+            why = (
+                "the collate_fn draws from the global random generators, after each sample's "
+                "replayed fetch. Move that augmentation into the dataset's __getitem__, or use "
+                "teacher_mode='online'."
+            )
+        else:
+            why = (
+                "the training samples change even under the same seeds (the dataset draws from "
+                "a generator of its own, or from the CUDA generator). Draw augmentation on the "
+                "CPU from the global generators, or use teacher_mode='online'."
+            )
         if views > 1:
             raise ValueError(
                 f"views={views} replays random augmentation by seeding torch's, Python's and "
-                "numpy's global generators before each sample, but the training samples change "
-                "even under the same seeds (the dataset draws from a generator of its own). Draw "
-                "augmentation from the global generators, or use teacher_mode='online'."
+                f"numpy's global generators before each sample is fetched, but {why}"
             )
         if train.fingerprint not in _AUGMENTATION_WARNED:
             _AUGMENTATION_WARNED.add(train.fingerprint)
-            log.warning(
-                "the training samples change from fetch to fetch even under the same seeds, so "
-                "cached targets cannot match the inputs a student sees; use teacher_mode='online' "
-                "for exact targets"
-            )
+            log.warning("cached targets cannot match the inputs a student sees: %s", why)
     elif not train.varies and views > 1:
         log.warning(
             "views=%d: the training samples do not change with the random seeds, so the %d views "
