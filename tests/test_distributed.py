@@ -370,3 +370,8 @@ def test_the_recipe_runs_under_torchrun(tmp_path):
     assert result["world_size"] == 2 and len(result["records"]) == 2
     assert np.load(tmp_path / "run" / "gen0" / "targets.npy").shape == (1000, 1, 10)
     assert done.stdout.count("held-out by generation") == 1  # rank 0 alone prints
+    # the same file, launched plainly, runs in one process
+    alone = [sys.executable, *command[5:-2], f"--run-dir={tmp_path / 'one'}", "--generations=0"]
+    done = subprocess.run(alone, capture_output=True, text=True, timeout=300, env=env)
+    assert done.returncode == 0, done.stderr[-3000:]
+    assert "1 process(es)" in done.stdout

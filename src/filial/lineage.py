@@ -368,6 +368,12 @@ class Lineage:
                 lambda: self._take_run_dir(fresh, is_run), f"opening the run directory {run_dir}"
             )
             if not distributed.is_main():
+                if not self.state_path.is_file():
+                    raise RuntimeError(
+                        f"rank {distributed.rank()} finds no {self.state_path}, which rank 0 has "
+                        "written: every rank must see the same run directory (one machine, or a "
+                        "file system shared by the machines)"
+                    )
                 state = self._read_state()
                 self._records = list(state["records"])
                 self._decision = state.get("decision")
