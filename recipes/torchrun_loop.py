@@ -30,6 +30,7 @@ def main() -> None:
     parser = argparse.ArgumentParser()
     parser.add_argument("--epochs", type=int, default=30)
     parser.add_argument("--generations", type=int, default=3)
+    parser.add_argument("--patience", type=int, default=2)
     parser.add_argument("--batch-size", type=int, default=64, help="global batch size")
     parser.add_argument("--threads", type=int, default=0, help="torch threads (0: default)")
     parser.add_argument("--run-dir", default="runs/torchrun")
@@ -69,6 +70,7 @@ def main() -> None:
         run_dir=args.run_dir,
         targets="ce",
         max_generations=args.generations,
+        patience=args.patience,
         test_loader=test_loader,
         fresh=args.fresh,
     )
