@@ -10,6 +10,7 @@ from __future__ import annotations
 import json
 import logging
 import os
+import random
 from pathlib import Path
 from typing import Any
 
@@ -17,7 +18,7 @@ import torch
 import torch.distributed as dist
 from torch import nn
 from torch.nn.parallel import DistributedDataParallel
-from torch.utils.data import DataLoader, DistributedSampler, TensorDataset
+from torch.utils.data import DataLoader, Dataset, DistributedSampler, TensorDataset
 
 import filial
 from filial import distributed
@@ -146,8 +147,52 @@ def lineage_job(rank: int, world: int, rendezvous: str, root: str) -> None:
     hook_loop(online)
     report["online"] = {"records": online.result.records}
     online.close()
+
+    # Replayed views of an augmenting dataset: the ranks share the (sample, view) codes.
+    augmented = Augmented()
+    sampler = DistributedSampler(augmented, num_replicas=world, rank=rank, seed=0)
+    views = filial.Lineage(
+        MLP(HIDDEN, inputs=AUGMENTED_FEATURES),
+        DataLoader(augmented, batch_size=16, sampler=sampler),
+        DataLoader(Augmented(40, seed=2, noise=0.0), batch_size=16),
+        run_dir=root_path / "views",
+        views=3,
+        store_dtype="float32",
+        max_generations=1,
+        patience=3,
+        seed=3,
+        progress=False,
+    )
+    hook_loop(views)
+    report["views"] = {"records": views.result.records}
+    views.close()
     write(Path(root) / "out", rank, report)
     dist.destroy_process_group()
+
+
+AUGMENTED_FEATURES = 64
+
+
+class Augmented(Dataset):
+    """Digits-sized Gaussian blobs whose samples draw noise from torch's global generator and a
+    sign flip from Python's (a dataset with random augmentation)."""
+
+    def __init__(self, n: int = 90, seed: int = 1, noise: float = 0.3) -> None:
+        g = torch.Generator().manual_seed(seed)
+        centres = torch.randn(10, AUGMENTED_FEATURES, generator=torch.Generator().manual_seed(9))
+        self.labels = torch.randint(0, 10, (n,), generator=g)
+        self.inputs = centres[self.labels] + torch.randn(n, AUGMENTED_FEATURES, generator=g)
+        self.noise = noise
+
+    def __len__(self) -> int:
+        return len(self.labels)
+
+    def __getitem__(self, index: int):
+        x = self.inputs[index]
+        if self.noise:
+            x = x + self.noise * torch.randn(x.shape)
+            x = -x if random.random() < 0.5 else x
+        return x, self.labels[index]
 
 
 class _Capture(logging.Handler):

@@ -24,10 +24,12 @@ import pytest
 import torch
 from conftest import TinyNet, blobs
 from distributed_jobs import (
+    AUGMENTED_FEATURES,
     BATCH,
     EPOCHS,
     HIDDEN,
     TRAIN_SIZE,
+    Augmented,
     collectives_job,
     lineage_job,
     run,
@@ -38,7 +40,7 @@ from torch.utils.data import DataLoader, DistributedSampler
 import filial
 from filial import distributed
 from filial.checkpoint import load_checkpoint
-from filial.data import EpochLoader, derive_seed, training_loader
+from filial.data import EpochLoader, Replay, derive_seed, training_loader
 from filial.demo import MLP, mail_room
 from filial.distributed import CoverageError, assemble, padding_rows
 from filial.generation import predict
@@ -345,6 +347,25 @@ def test_an_online_teacher_runs_on_every_rank(two_ranks):
     assert not (root / "online" / "gen0" / "targets.npy").exists()  # nothing cached
     # generation 0 learns from the labels in both runs, with the same seeds and shards
     assert records[0]["heldout"] == zero["straight"]["records"][0]["heldout"]
+
+
+@pytest.mark.slow
+def test_replayed_views_are_shared_by_code_and_equal_one_process(two_ranks):
+    """views=3 on an augmenting dataset: the ranks split the (sample, view) codes; the store
+    holds one target per pair, equal to a single process's replayed pass with the checkpoint."""
+    root, (zero, one) = two_ranks
+    assert _same(zero["views"]["records"], one["views"]["records"])
+    dataset = Augmented()
+    replay = Replay(derive_seed(3, 3), 3)  # the lineage's replay for seed=3 (lineage._replay)
+    for record in zero["views"]["records"]:
+        directory = root / "views" / f"gen{record['generation']}"
+        targets = torch.from_numpy(np.load(directory / "targets.npy"))
+        assert targets.shape == (len(dataset), 3, 10)
+        model = MLP(HIDDEN, inputs=AUGMENTED_FEATURES)()
+        model.load_state_dict(load_checkpoint(root / "views" / record["checkpoint"]))
+        alone = predict(model, DataLoader(dataset, batch_size=16), 0, replay=replay)
+        torch.testing.assert_close(targets, alone.outputs.view(len(dataset), 3, 10))
+        assert not torch.equal(targets[:, 0], targets[:, 1])  # the views differ
 
 
 @pytest.mark.slow
