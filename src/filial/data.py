@@ -33,7 +33,14 @@ from typing import Any
 
 import numpy as np
 import torch
-from torch.utils.data import BatchSampler, DataLoader, Dataset, IterableDataset, SequentialSampler
+from torch.utils.data import (
+    BatchSampler,
+    DataLoader,
+    Dataset,
+    IterableDataset,
+    Sampler,
+    SequentialSampler,
+)
 
 from .errors import InputError
 from .losses import TopKTargets
@@ -303,6 +310,37 @@ def _common_settings(loader: DataLoader) -> dict[str, Any]:
     return settings
 
 
+class EpochLoader(DataLoader):
+    """A DataLoader that calls ``set_epoch(k)`` on the user's sampler before its k-th pass.
+
+    Note: epochs of a DistributedSampler. It shuffles with ``seed + epoch`` and keeps the same
+    order until it is told the epoch before every pass (torch docs, DistributedSampler), which a
+    plain distributed loop does by hand. The epoch here is explicit and counted: the number of
+    passes (``iter`` calls) over this loader so far, from 0 in every generation, since
+    ``gen.loader`` is built afresh for each one; the lineage gives the sampler a seed of the
+    generation's own, so generations see different orders. A partial pass counts as one.
+    """
+
+    def __init__(self, *args: Any, epoch_sampler: Any, **kwargs: Any) -> None:
+        super().__init__(*args, **kwargs)
+        self.epoch_sampler = epoch_sampler
+        self.epoch = 0  # the epoch of the next pass
+
+    def __iter__(self) -> Any:
+        self.epoch_sampler.set_epoch(self.epoch)
+        self.epoch += 1
+        return super().__iter__()
+
+
+def epoch_sampler(loader: DataLoader) -> Any:
+    """The user's batch sampler or sampler that takes ``set_epoch`` (e.g. a DistributedSampler)."""
+    batch_sampler = loader.batch_sampler
+    for candidate in (batch_sampler, getattr(batch_sampler, "sampler", None), loader.sampler):
+        if callable(getattr(candidate, "set_epoch", None)):
+            return candidate
+    return None
+
+
 def training_loader(
     loader: DataLoader,
     store: TargetStore | None,
@@ -314,19 +352,23 @@ def training_loader(
     It keeps the user's batch sampler (so shuffling, custom samplers and ``drop_last`` behave and
     draw random numbers exactly as before), generator, workers and collate function. With a
     ``replay`` the samples are fetched in replayed views; with several views, one is drawn per
-    sample and epoch (:class:`ViewChoice`, seeded from ``choice_seed``).
+    sample and epoch (:class:`ViewChoice`, seeded from ``choice_seed``). A sampler with
+    ``set_epoch`` (DistributedSampler) is told the epoch before every pass (:class:`EpochLoader`).
     """
     check_loader(loader, "train_loader")
+    epochs = epoch_sampler(loader)  # found on the user's loader, before any wrapping
+    extra = {} if epochs is None else {"epoch_sampler": epochs}
     batch_sampler = loader.batch_sampler
     if replay is not None and replay.views > 1:
         batch_sampler = ViewChoice(batch_sampler, replay.views, choice_seed)
-    return DataLoader(
+    return (DataLoader if epochs is None else EpochLoader)(
         IndexedDataset(loader.dataset, replay),
         batch_sampler=batch_sampler,
         collate_fn=IndexedCollate(loader.collate_fn, store),
         generator=loader.generator,
         persistent_workers=loader.persistent_workers,
         **_common_settings(loader),
+        **extra,
     )
 
 
@@ -337,13 +379,16 @@ def batch_size_of(loader: DataLoader, default: int = 256) -> int:
     return int(size) if isinstance(size, int) and size > 0 else default
 
 
-def sequential_loader(loader: DataLoader, seed: int, replay: Replay | None = None) -> DataLoader:
+def sequential_loader(
+    loader: DataLoader, seed: int, replay: Replay | None = None, sampler: Sampler | None = None
+) -> DataLoader:
     """The user's loader over the same dataset in index order, yielding ``(indices, x, y)``.
 
     Used for the teacher pass and evaluations: every sample once, in a fixed order, whatever the
     user's sampler does. A private generator seeds the workers, so building it draws nothing from
     the user's global random state. With a ``replay`` it goes over every (sample, view) in the
     order of their codes ``i * views + v``, and the indices it yields are those codes.
+    ``sampler`` (a process group's shard of those codes, in order) replaces the whole range.
     """
     generator = torch.Generator()
     generator.manual_seed(seed)
@@ -354,7 +399,9 @@ def sequential_loader(loader: DataLoader, seed: int, replay: Replay | None = Non
     return DataLoader(
         IndexedDataset(loader.dataset, replay),
         batch_sampler=BatchSampler(
-            SequentialSampler(range(count)), batch_size_of(loader), drop_last=False
+            SequentialSampler(range(count)) if sampler is None else sampler,
+            batch_size_of(loader),
+            drop_last=False,
         ),
         collate_fn=IndexedCollate(loader.collate_fn, keep_indices=True),
         generator=generator,

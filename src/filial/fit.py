@@ -14,6 +14,7 @@ import torch
 from torch import nn
 from tqdm.auto import tqdm
 
+from . import distributed
 from ._faults import armed, fault_point
 from .generation import Generation, model_device, move_to
 
@@ -56,12 +57,18 @@ class EpochFit:
     def __call__(self, gen: Generation) -> nn.Module:
         model = gen.model if self.device is None else gen.model.to(self.device)
         device = model_device(model)
+        # Note: several processes. Under a process group the student trains inside
+        # DistributedDataParallel (gradients averaged over the ranks' shards); the module itself
+        # is returned for finish, and the epoch figures are summed over the ranks.
+        trained = distributed.wrap(model)
         optimizer = self.optimizer(model.parameters())
         scheduler = self.scheduler(optimizer) if self.scheduler is not None else None
         model.train()
         fault_name = f"gen{gen.index}" if armed("batch") else None
         # disable=None lets tqdm switch itself off when stderr is not a terminal.
         disable = None if self.progress is None else not self.progress
+        if not distributed.is_main():
+            disable = True
         bar = tqdm(
             range(self.epochs),
             desc=f"generation {gen.index}",
@@ -79,7 +86,7 @@ class EpochFit:
                 if fault_name is not None:
                     fault_point("batch", fault_name)
                 labels = labels.to(device, non_blocking=True)
-                outputs = model(move_to(inputs, device))
+                outputs = trained(move_to(inputs, device))
                 loss = gen.loss(outputs, labels, targets)
                 optimizer.zero_grad(set_to_none=True)
                 loss.backward()
@@ -94,6 +101,8 @@ class EpochFit:
                 samples += len(labels)
             if scheduler is not None:
                 scheduler.step()
+            if distributed.is_distributed():
+                total, hits, batches, samples = distributed.all_sum([total, hits, batches, samples])
             mean = float(total) / max(batches, 1)
             running = float(hits) / max(samples, 1)
             name = "running_accuracy" if classify else "running_neg_mse"

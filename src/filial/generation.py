@@ -21,8 +21,9 @@ import numpy as np
 import torch
 import torch.nn.functional as F
 from torch import nn
-from torch.utils.data import DataLoader
+from torch.utils.data import DataLoader, DistributedSampler
 
+from . import distributed
 from ._faults import armed, fault_point
 from ._io import atomic_write
 from .checkpoint import save_checkpoint, unwrap
@@ -60,6 +61,7 @@ class Predictions:
 
     outputs: torch.Tensor  # (N, C) float32 on the CPU
     labels: torch.Tensor  # (N, ...) on the CPU
+    indices: torch.Tensor | None = None  # a shard's dataset index per row (None: all, in order)
 
 
 def move_to(value: Any, device: torch.device) -> Any:
@@ -88,17 +90,21 @@ def predict(
     seed: int,
     fault: str | None = None,
     replay: Replay | None = None,
+    sampler: DistributedSampler | None = None,
 ) -> Predictions:
     """Outputs of ``model`` (in eval mode, restored afterwards) over ``loader``'s whole dataset.
 
     The batches come in index order, so each one fills the next rows of a buffer kept on the
     model's device; it is copied to the CPU once, at the end (no synchronisation per batch).
     With a ``replay`` the rows are the (sample, view) pairs in code order, ``i * views + v``.
+    With ``sampler`` (a rank's shard of those codes) the rows follow the sampler and
+    ``indices`` names them.
     """
     module = unwrap(model)
     device = model_device(module)
     views = replay.views if replay is not None else 1
-    size = len(loader.dataset) * views  # type: ignore[arg-type]
+    size = len(loader.dataset) * views if sampler is None else len(sampler)  # type: ignore[arg-type]
+    order = None if sampler is None else torch.empty(size, dtype=torch.int64)
     outputs: torch.Tensor | None = None
     labels: torch.Tensor | None = None
     filled = 0
@@ -108,7 +114,7 @@ def predict(
         # A dataset with random augmentation draws from the global generators in this process
         # when the loader has no workers; the evaluation must not move the user's streams.
         with preserved_rng(), torch.inference_mode():
-            for indices, inputs, batch_labels in sequential_loader(loader, seed, replay):
+            for indices, inputs, batch_labels in sequential_loader(loader, seed, replay, sampler):
                 if fault is not None:
                     fault_point("teacher", fault)
                 out = module(move_to(inputs, device))
@@ -129,11 +135,13 @@ def predict(
                         f"the model's output width changed within one pass "
                         f"({outputs.shape[1]} then {out.shape[1]})"
                     )
-                if int(indices[0]) != filled:
+                if order is None and int(indices[0]) != filled:
                     raise RuntimeError(
                         f"evaluation batch starts at {int(indices[0])}, not {filled}"
                     )
                 end = filled + len(indices)
+                if order is not None:
+                    order[filled:end] = torch.as_tensor(indices, dtype=torch.int64)
                 outputs[filled:end] = out
                 labels[filled:end] = batch_labels
                 filled = end
@@ -141,7 +149,32 @@ def predict(
         module.train(was_training)
     if outputs is None or labels is None or filled != size:
         raise RuntimeError(f"the evaluation pass covered {filled} of {size} samples")
-    return Predictions(outputs.cpu(), labels)
+    return Predictions(outputs.cpu(), labels, order)
+
+
+def evaluate(
+    model: nn.Module,
+    loader: DataLoader,
+    seed: int,
+    fault: str | None = None,
+    replay: Replay | None = None,
+    alone: bool = False,
+) -> Predictions | None:
+    """:func:`predict` over the whole dataset; under a process group each rank predicts its
+    shard and rank 0 receives the whole, checked index by index (None on the other ranks).
+    ``alone``: this process computes the whole pass by itself, process group or not."""
+    if alone or not distributed.is_distributed():
+        return predict(model, loader, seed, fault=fault, replay=replay)
+    views = replay.views if replay is not None else 1
+    size = len(loader.dataset) * views  # type: ignore[arg-type]
+    sampler = distributed.shard_sampler(range(size))  # a share of the codes i * views + v
+    part = predict(model, loader, seed, fault=fault, replay=replay, sampler=sampler)
+    assert part.indices is not None  # a sampler was given
+    padding = distributed.padding_rows(sampler)
+    whole = distributed.gather_indexed(
+        part.indices, size, part.outputs, part.labels, padding=padding
+    )
+    return None if whole is None else Predictions(whole[0], whole[1])
 
 
 def probe_outputs(model: nn.Module, inputs: Any) -> torch.Tensor:
@@ -168,14 +201,17 @@ def _finite_module(model: nn.Module) -> bool:
 
 
 def training_pass(
-    model: nn.Module, setup: Setup, seed: int, fault: str | None = None
-) -> tuple[Predictions, torch.Tensor]:
+    model: nn.Module, setup: Setup, seed: int, fault: str | None = None, alone: bool = False
+) -> tuple[Predictions, torch.Tensor] | None:
     """The teacher pass over the training set: its outputs ``(N, views, C)``, and the
-    predictions of view 0 (for the training-set figures of the record)."""
+    predictions of view 0 (for the training-set figures of the record). Under a process group
+    the ranks share it and only rank 0 gets the result (None elsewhere), unless ``alone``."""
     replay = setup.replay
     if replay is not None and not setup.write_targets:
         replay = Replay(replay.seed, 1)  # nobody reads the views: view 0 is enough
-    train = predict(model, setup.train_loader, seed, fault=fault, replay=replay)
+    train = evaluate(model, setup.train_loader, seed, fault=fault, replay=replay, alone=alone)
+    if train is None:
+        return None
     views = replay.views if replay is not None else 1
     outputs = train.outputs.view(-1, views, train.outputs.shape[1])
     return Predictions(outputs[:, 0], train.labels[::views]), outputs
@@ -246,7 +282,10 @@ class Generation:
         setup: Setup,
         teacher: int | None,
         store: TargetStore | None,
-        on_finish: Callable[[Generation, dict[str, Any], Predictions], dict[str, Any]],
+        # Called with None, None on ranks other than 0 (which wait for rank 0's record).
+        on_finish: Callable[
+            [Generation, dict[str, Any] | None, Predictions | None], dict[str, Any]
+        ],
         teacher_model: nn.Module | None = None,
     ) -> None:
         self.index = index
@@ -307,9 +346,16 @@ class Generation:
         setup = self._setup
         seed = derive_seed(setup.seed, self.index, 1)
         fault = f"gen{self.index}" if armed("teacher") else None
-        train, train_outputs = training_pass(model, setup, seed, fault=fault)
-        heldout = predict(model, setup.heldout_loader, seed)
-        test = predict(model, setup.test_loader, seed) if setup.test_loader is not None else None
+        distributed.align_replicas(unwrap(model))
+        passes = training_pass(model, setup, seed, fault=fault)
+        heldout = evaluate(model, setup.heldout_loader, seed)
+        test = evaluate(model, setup.test_loader, seed) if setup.test_loader is not None else None
+        if passes is None or heldout is None:
+            # Note: several processes. Only rank 0 holds the whole passes: it scores, writes and
+            # decides (in on_finish); this rank takes the lineage's decision, without a record.
+            self.record = self._on_finish(self, None, None)
+            return self.record
+        train, train_outputs = passes
         metric = setup.metric
         diverged = not (
             _finite_module(model)

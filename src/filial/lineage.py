@@ -28,9 +28,10 @@ from typing import Any
 import numpy as np
 import torch
 from torch import nn
-from torch.utils.data import DataLoader
+from torch.utils.data import DataLoader, DistributedSampler
 from tqdm.auto import tqdm
 
+from . import distributed
 from ._io import LockedError, RunLock, atomic_write, atomic_write_json, sweep_temporaries
 from .checkpoint import load_checkpoint
 from .data import Probe, Replay, check_loader, derive_seed, preserved_rng, probe
@@ -288,10 +289,12 @@ class Lineage:
             )
         self.model_fn = model_fn
         self.run_dir = Path(run_dir)
-        self.progress = bool(progress)
+        # Under a process group only rank 0 prints and writes TensorBoard runs.
+        self.progress = bool(progress) and distributed.is_main()
         if tensorboard is True:
             tensorboard = self.run_dir / "tb"
-        self.tensorboard = TensorBoardLog(tensorboard) if tensorboard else None
+        main = distributed.is_main()
+        self.tensorboard = TensorBoardLog(tensorboard) if tensorboard and main else None
         self.rule = rule
         train_print = train_probe.fingerprint
         self.settings: dict[str, Any] = {
@@ -338,6 +341,8 @@ class Lineage:
         self._heldout: dict[int, torch.Tensor] = {}
         self._fresh_store: TargetStore | None = None
         self._previous_model: weakref.ref[nn.Module] | None = None
+        if distributed.is_distributed():
+            self._check_ranks(train_loader)
         self._open_run_dir(fresh)
 
     # -- the run directory -------------------------------------------------------------------
@@ -358,6 +363,30 @@ class Lineage:
             )
         if is_run and not fresh:
             self._refuse_other_settings(self._read_state())  # before touching anything
+        if distributed.is_distributed():
+            # Note: several processes. Every rank has made the read-only checks above, so bad
+            # settings fail on all of them; once all have looked, rank 0 alone takes the lock and
+            # resumes or starts the run, and the other ranks then read the state it left.
+            distributed.barrier()
+            distributed.on_rank_zero(
+                lambda: self._take_run_dir(fresh, is_run), f"opening the run directory {run_dir}"
+            )
+            if not distributed.is_main():
+                if not self.state_path.is_file():
+                    raise RuntimeError(
+                        f"rank {distributed.rank()} finds no {self.state_path}, which rank 0 has "
+                        "written: every rank must see the same run directory (one machine, or a "
+                        "file system shared by the machines)"
+                    )
+                state = self._read_state()
+                self._records = list(state["records"])
+                self._decision = state.get("decision")
+            return
+        self._take_run_dir(fresh, is_run)
+
+    def _take_run_dir(self, fresh: bool, is_run: bool) -> None:
+        """Lock the run directory, then resume the run in it or start one (rank 0's job)."""
+        run_dir = self.run_dir
         created = not run_dir.exists()
         run_dir.mkdir(parents=True, exist_ok=True)
         self._lock = RunLock(run_dir)
@@ -551,13 +580,20 @@ class Lineage:
             if stored.get("epochs_matched") == epochs:
                 return stored
 
-        def on_finish(gen: Generation, record: dict[str, Any], _: Predictions) -> dict[str, Any]:
+        def on_finish(
+            gen: Generation, record: dict[str, Any] | None, _: Predictions | None
+        ) -> dict[str, Any]:
+            if record is None:  # a rank other than 0: rank 0 writes the baseline's record
+                distributed.broadcast_ints(None, 1)
+                return json.loads(state_path.read_text(encoding="utf-8"))
             record.update(
                 kind="matched-baseline",
                 epochs_matched=epochs,
                 checkpoint=f"{BASELINE_DIR}/{record['checkpoint']}",
             )
             atomic_write_json(state_path, record)
+            if distributed.is_distributed():
+                distributed.broadcast_ints([1], 1)
             return record
 
         self._seed_generation(0)
@@ -580,7 +616,7 @@ class Lineage:
         if self._records and self.settings["teacher_mode"] == "online":
             teacher_model = load_generation(self.model_fn, self.run_dir, self._records[-1])
         elif self._records:
-            store = self._teacher_store(self._records[-1])
+            store = self._open_teacher_store(self._records[-1])
         self._seed_generation(index)
         model = self.model_fn()
         if not isinstance(model, nn.Module):
@@ -624,6 +660,31 @@ class Lineage:
         loss.check(outputs, torch.as_tensor(self._probe.labels))
         return int(outputs.shape[1])
 
+    def _check_ranks(self, train_loader: DataLoader) -> None:
+        """Under a process group: every rank must build the same lineage over the same data,
+        and the training loader should give each rank its own shard."""
+        differing = distributed.ranks_differing(json.dumps(self.settings, sort_keys=True))
+        if differing:
+            raise InputError(
+                f"rank(s) {differing} built the Lineage with other settings or data than rank 0 "
+                "(compared: the settings saved in lineage.json, which include fingerprints of "
+                "the training and held-out data). Every rank must pass the same arguments and "
+                "the same datasets; shard the training set with a DistributedSampler instead of "
+                "giving each rank a dataset of its own."
+            )
+        batch_sampler = train_loader.batch_sampler
+        samplers = (train_loader.sampler, batch_sampler, getattr(batch_sampler, "sampler", None))
+        if distributed.is_main() and not any(isinstance(s, DistributedSampler) for s in samplers):
+            # A warning, not a refusal: a batch sampler of the user's own may shard as well.
+            log.warning(
+                "%d processes run this lineage, but the training loader has no "
+                "DistributedSampler: unless its sampler shards the data itself, every rank "
+                "trains on the whole training set in every epoch. Pass DataLoader(dataset, "
+                "sampler=torch.utils.data.DistributedSampler(dataset), ...) to give each rank "
+                "its shard.",
+                distributed.world_size(),
+            )
+
     def _probe_model(self, model: nn.Module) -> torch.Tensor:
         """The model's outputs on the probe samples; a model that cannot run on them is an
         input error named here, before any training."""
@@ -662,6 +723,35 @@ class Lineage:
         for generator in held.values():
             if isinstance(generator, torch.Generator):
                 generator.manual_seed(derive_seed(seed, index, 2))
+        # Note: DistributedSampler holds no generator; it shuffles with seed + epoch. Its seed
+        # is derived here per generation (the same on every rank, so the shards stay
+        # complementary): generations see different orders and a resumed run repeats them.
+        samplers = (loader.sampler, batch_sampler, getattr(batch_sampler, "sampler", None))
+        for sampler in {id(s): s for s in samplers}.values():
+            if isinstance(sampler, DistributedSampler):
+                sampler.seed = derive_seed(seed, index, 2)
+
+    def _open_teacher_store(self, record: dict[str, Any]) -> TargetStore:
+        """The teacher's store, verified; under a process group rank 0 verifies it (rebuilding a
+        damaged one) while the other ranks wait, then they open the store it vouched for."""
+        if not distributed.is_distributed():
+            return self._teacher_store(record)
+        store = distributed.on_rank_zero(
+            lambda: self._teacher_store(record),
+            f"checking generation {record['generation']}'s targets",
+        )
+        if store is None:
+            store = TargetStore(self.run_dir / f"gen{record['generation']}")
+            if not store.exists() or store.manifest["teacher_sha256"] != record.get(
+                "checkpoint_sha256"
+            ):
+                raise StoreError(
+                    f"rank {distributed.rank()} finds no targets of generation "
+                    f"{record['generation']}'s checkpoint in {store.directory}, which rank 0 has "
+                    "written: every rank must see the same run directory (one machine, or a file "
+                    "system shared by the machines)"
+                )
+        return store
 
     def _teacher_store(self, record: dict[str, Any]) -> TargetStore:
         """The teacher ``record``'s targets, verified; rebuilt from its checkpoint if damaged."""
@@ -686,7 +776,10 @@ class Lineage:
             )
         model = load_generation(self.model_fn, self.run_dir, record)
         seed = derive_seed(self.settings["seed"], record["generation"], 1)
-        outputs = training_pass(model, self._setup, seed)[1]
+        # rank 0 alone under a process group: the other ranks wait in _open_teacher_store
+        passes = training_pass(model, self._setup, seed, alone=True)
+        assert passes is not None  # alone: the whole pass, here
+        outputs = passes[1]
         return write_targets(self._setup, directory, outputs, record["checkpoint_sha256"])
 
     def _heldout_outputs(self, generation: int) -> torch.Tensor:
@@ -696,7 +789,7 @@ class Lineage:
         return self._heldout[generation]
 
     def _record(
-        self, gen: Generation, record: dict[str, Any], heldout: Predictions
+        self, gen: Generation, record: dict[str, Any] | None, heldout: Predictions | None
     ) -> dict[str, Any]:
         """Called by ``gen.finish``: add cross-generation figures, decide, write the state."""
         if gen.index != len(self._records) or self.done:
@@ -704,6 +797,8 @@ class Lineage:
                 f"generation {gen.index} finished out of turn (the lineage has "
                 f"{len(self._records)} finished generations)"
             )
+        if record is None or heldout is None:  # a rank other than 0 under a process group
+            return self._follow(gen)
         self._heldout[gen.index] = heldout.outputs
         labels_path = self.run_dir / HELDOUT_LABELS_FILE
         if not labels_path.is_file():
@@ -750,7 +845,30 @@ class Lineage:
                 else ""
             )
         )
+        if distributed.is_distributed():  # the decision, for the other ranks' _follow
+            distributed.broadcast_ints([int(decision.stop), len(self._records)], 2)
         return record
+
+    def _follow(self, gen: Generation) -> dict[str, Any]:
+        """A rank other than 0: take rank 0's stop decision (broadcast), then its records from
+        ``lineage.json``, so that every rank holds the same records and leaves the loop at the
+        same generation."""
+        stop, finished = distributed.broadcast_ints(None, 2)
+        state = self._read_state()
+        records, decision = list(state["records"]), state.get("decision") or {}
+        if (
+            len(records) != finished
+            or records[-1]["generation"] != gen.index
+            or bool(decision.get("stop")) != bool(stop)
+        ):
+            raise RuntimeError(
+                f"rank {distributed.rank()} reads {len(records)} finished generations in "
+                f"{self.state_path}, but rank 0 has just recorded generation {gen.index} of "
+                f"{finished}: every rank must see the same run directory (one machine, or a file "
+                "system shared by the machines)"
+            )
+        self._records, self._decision = records, decision
+        return records[-1]
 
 
 def _replay(train: Probe, views: int, seed: int) -> Replay | None:

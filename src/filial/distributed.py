@@ -1,0 +1,370 @@
+"""Several processes: rank, world size, barriers and the few collectives a lineage needs.
+
+filial never starts a process group. When the user's script has initialised one
+(``torch.distributed.init_process_group``, e.g. under ``torchrun``), a lineage runs on every rank:
+each rank trains on its shard of the training set (the user's ``DistributedSampler``) and runs the
+evaluation passes on its shard; :func:`gather_indexed` brings the shards' outputs to rank 0 with
+tensor collectives; rank 0 alone writes the run directory and decides, and
+:func:`broadcast_ints` / :func:`on_rank_zero` tell the other ranks. Without a process group every
+function here behaves as rank 0 of a world of one and sends nothing.
+
+The run directory must be one that every rank sees (one machine, or a file system shared by the
+machines): the other ranks read the target store and ``lineage.json`` that rank 0 wrote.
+
+Collectives use the device the backend needs: CPU tensors for gloo (and mpi), the rank's CUDA
+device for nccl (the model's device when it is a CUDA device, else ``torch.cuda.current_device()``,
+which the user sets with ``torch.cuda.set_device(local_rank)``, as usual under nccl).
+
+>>> rank(), world_size(), is_main()   # no process group here
+(0, 1, True)
+"""
+
+from __future__ import annotations
+
+import hashlib
+from collections.abc import Callable, Sequence, Sized
+from typing import TypeVar
+
+import torch
+from torch import nn
+from torch.utils.data import DistributedSampler
+
+from .errors import InputError
+
+T = TypeVar("T")
+MAIN = 0  # the rank that writes and decides
+_SHOWN = 5  # sample indices named in a coverage error
+
+
+class CoverageError(RuntimeError):
+    """An evaluation pass did not deliver every sample index exactly once."""
+
+
+class RankZeroFailed(RuntimeError):
+    """Rank 0 failed at a step the other ranks were waiting for; rank 0's output has the error."""
+
+
+def is_distributed() -> bool:
+    """True when torch.distributed is built in and a default process group is initialised."""
+    return torch.distributed.is_available() and torch.distributed.is_initialized()
+
+
+def rank() -> int:
+    return torch.distributed.get_rank() if is_distributed() else 0
+
+
+def world_size() -> int:
+    return torch.distributed.get_world_size() if is_distributed() else 1
+
+
+def is_main() -> bool:
+    """True on rank 0, and in a single process."""
+    return rank() == MAIN
+
+
+def collective_device(preferred: torch.device | None = None) -> torch.device:
+    """The device for tensors sent through the default group's backend.
+
+    gloo and mpi take CPU tensors (and so does a mixed ``cpu:gloo,cuda:nccl`` backend); nccl
+    takes CUDA tensors only: ``preferred`` when it is a CUDA device, else the current one.
+    """
+    cpu = torch.device("cpu")
+    if not is_distributed():
+        return cpu
+    backend = str(torch.distributed.get_backend()).lower()
+    if "gloo" in backend or "mpi" in backend:
+        return cpu
+    if preferred is not None and preferred.type != "cpu":
+        return preferred
+    if "nccl" in backend:
+        return torch.device("cuda", torch.cuda.current_device())
+    return cpu
+
+
+def barrier() -> None:
+    """Wait until every rank is here (an all-reduce of one number on the backend's device, so
+    nccl needs no guess of the device)."""
+    if is_distributed():
+        torch.distributed.all_reduce(torch.zeros(1, device=collective_device()))
+
+
+def broadcast_ints(values: Sequence[int] | None, length: int) -> list[int]:
+    """Rank 0's ``values`` (``length`` integers, e.g. a stop decision) on every rank.
+
+    Rank 0 passes the values; the others pass None and receive them (a tensor broadcast).
+    """
+    if not is_distributed():
+        if values is None:
+            raise ValueError("broadcast_ints needs the values in a single process")
+        return [int(v) for v in values]
+    if is_main():
+        if values is None or len(values) != length:
+            raise ValueError(f"rank 0 must send {length} integers, but got {values!r}")
+        tensor = torch.tensor([int(v) for v in values], dtype=torch.int64)
+    else:
+        tensor = torch.zeros(length, dtype=torch.int64)
+    tensor = tensor.to(collective_device())
+    torch.distributed.broadcast(tensor, src=MAIN)
+    return [int(v) for v in tensor.cpu().tolist()]
+
+
+def on_rank_zero(work: Callable[[], T], what: str) -> T | None:
+    """Run ``work`` on rank 0 alone while the other ranks wait for it; returns its result on
+    rank 0 and None elsewhere. If it fails on rank 0, every other rank raises
+    :class:`RankZeroFailed` naming ``what`` instead of waiting for a message that never comes."""
+    if not is_distributed():
+        return work()
+    if is_main():
+        try:
+            result = work()
+        except BaseException:
+            broadcast_ints([0], 1)
+            raise
+        broadcast_ints([1], 1)
+        return result
+    (ok,) = broadcast_ints(None, 1)
+    if not ok:
+        raise RankZeroFailed(f"rank 0 failed while {what}; its error is in rank 0's output")
+    return None
+
+
+def all_sum(values: Sequence[float | torch.Tensor]) -> list[float]:
+    """The sums over the ranks of a few numbers (float64, one all-reduce)."""
+    if not is_distributed():
+        return [float(v) for v in values]
+    device = collective_device()
+    tensor = torch.stack(
+        [torch.as_tensor(v, dtype=torch.float64).to(device).reshape(()) for v in values]
+    )
+    torch.distributed.all_reduce(tensor)
+    return [float(v) for v in tensor.cpu().tolist()]
+
+
+def ranks_differing(text: str) -> list[int]:
+    """The ranks whose ``text`` differs from rank 0's (compared by sha256, 32 bytes a rank)."""
+    if not is_distributed():
+        return []
+    device = collective_device()
+    digest = torch.tensor(list(hashlib.sha256(text.encode()).digest()), dtype=torch.uint8)
+    gathered = [torch.empty_like(digest, device=device) for _ in range(world_size())]
+    torch.distributed.all_gather(gathered, digest.to(device))
+    return [r for r, other in enumerate(gathered) if not torch.equal(other, gathered[MAIN])]
+
+
+def wrap(model: nn.Module) -> nn.Module:
+    """``model`` in DistributedDataParallel under a process group (``device_ids`` only for a
+    CUDA module); the module itself otherwise or when it is wrapped already."""
+    if not is_distributed() or isinstance(model, nn.parallel.DistributedDataParallel):
+        return model
+    device = next((p.device for p in model.parameters()), torch.device("cpu"))
+    device_ids = [device] if device.type == "cuda" else None
+    return nn.parallel.DistributedDataParallel(model, device_ids=device_ids)
+
+
+def align_replicas(model: nn.Module) -> None:
+    """Check that every rank holds the same parameters, and give every rank rank 0's buffers.
+
+    Note: replicas. The evaluation passes score each shard on its own rank, so the shards'
+    outputs only belong together if every rank's model is the one rank 0 checkpoints.
+    DistributedDataParallel keeps the parameters equal, but batch-norm statistics are updated on
+    each rank from its own last batches and drift apart: rank 0's buffers are broadcast into the
+    other ranks' copies. Parameters that differ mean the gradients were never averaged (the
+    model was not wrapped in DistributedDataParallel), which no broadcast should paper over.
+    """
+    if not is_distributed():
+        return
+    params = [p.detach() for p in model.parameters()]
+    if params:
+        device = collective_device(params[0].device)
+        sums = torch.stack(
+            [
+                torch.stack([p.double().sum() for p in params]).sum(),
+                torch.stack([p.double().square().sum() for p in params]).sum(),
+                torch.stack([p.double().abs().sum() for p in params]).sum(),
+            ]
+        ).to(device)
+        gathered = [torch.empty_like(sums) for _ in range(world_size())]
+        torch.distributed.all_gather(gathered, sums)
+        reference = gathered[MAIN].cpu()
+        tolerance = 1e-6 * max(float(reference[2]), 1.0)
+        differing = [
+            r
+            for r, other in enumerate(gathered)
+            if float((other.cpu() - reference).abs().max()) > tolerance
+        ]
+        if differing:
+            raise InputError(
+                f"the model's parameters on rank(s) {differing} differ from rank 0's after "
+                "training: the ranks trained separate models. Wrap the student in "
+                "torch.nn.parallel.DistributedDataParallel(gen.model) for training (or use "
+                "filial.fit_epochs, which does it), so that every rank trains the same model."
+            )
+    with torch.no_grad():
+        for buffer in model.buffers():
+            sent = buffer.detach()
+            if sent.dtype == torch.bool:
+                sent = sent.to(torch.uint8)
+            sent = sent.to(collective_device(buffer.device)).contiguous()
+            torch.distributed.broadcast(sent, src=MAIN)
+            buffer.copy_(sent.to(buffer.device, buffer.dtype))
+
+
+def shard_sampler(dataset: Sized) -> DistributedSampler:
+    """This rank's share of ``dataset`` for an evaluation pass: torch's DistributedSampler in
+    index order (no shuffling, no samples dropped; padded so that every rank has as many)."""
+    return DistributedSampler(
+        dataset,  # type: ignore[arg-type]
+        num_replicas=world_size(),
+        rank=rank(),
+        shuffle=False,
+        drop_last=False,
+    )
+
+
+def padding_rows(sampler: DistributedSampler) -> torch.Tensor:
+    """Which of ``sampler``'s positions are padding: repeats of samples that another position
+    already holds, added so that every rank gets the same number.
+
+    Note: duplicate indices from distributed padding. Without ``drop_last``, DistributedSampler
+    extends the index list to ``total_size`` (a multiple of the world size) by repeating its
+    first samples, then gives rank ``r`` positions ``r, r + W, r + 2W, ...``. The positions at
+    or beyond the dataset's length are the repeats; they are known before the pass, so they are
+    dropped by position rather than by guessing which of two equal indices is the spare.
+    """
+    if sampler.drop_last:
+        raise ValueError("a sampler that drops samples cannot cover the whole dataset")
+    positions = torch.arange(sampler.rank, sampler.total_size, sampler.num_replicas)
+    return positions >= len(sampler.dataset)  # type: ignore[arg-type]
+
+
+def assemble(
+    indices: Sequence[torch.Tensor], values: Sequence[Sequence[torch.Tensor]], size: int
+) -> list[torch.Tensor]:
+    """Put rows from several ranks in dataset order; each index in ``range(size)`` exactly once.
+
+    ``indices[r]`` holds the sample index of every row that rank ``r`` sent (-1 for a row to
+    drop: padding); ``values[k][r]`` holds those rows of the k-th tensor. Raises
+    :class:`CoverageError` naming the indices that are missing, out of range or sent twice.
+
+    >>> rows = assemble([torch.tensor([0, 2, -1]), torch.tensor([1])],
+    ...                 [[torch.tensor([0., 2., 0.]), torch.tensor([1.])]], size=3)
+    >>> rows[0].tolist()
+    [0.0, 1.0, 2.0]
+    """
+    flat = torch.cat([i.to(torch.int64).cpu() for i in indices])
+    keep = flat >= 0
+    kept = flat[keep]
+    problems = []
+    outside = kept[kept >= size]
+    if len(outside):
+        problems.append(f"{len(outside)} rows name indices beyond {size - 1}: {_some(outside)}")
+        kept = kept[kept < size]
+    counts = torch.bincount(kept, minlength=size)
+    missing = torch.nonzero(counts == 0).flatten()
+    twice = torch.nonzero(counts > 1).flatten()
+    if len(missing):
+        problems.append(f"{len(missing)} of {size} sample indices are missing: {_some(missing)}")
+    if len(twice):
+        problems.append(
+            f"{len(twice)} sample indices arrived more than once (not as the sampler's "
+            f"padding): {_some(twice)}"
+        )
+    if problems:
+        raise CoverageError(
+            "the evaluation pass did not cover the dataset exactly once, so no target can be "
+            "trusted to belong to its sample: " + "; ".join(problems)
+        )
+    assembled = []
+    for parts in values:
+        rows = torch.cat([p.cpu() for p in parts])[keep]
+        whole = torch.empty((size, *rows.shape[1:]), dtype=rows.dtype)
+        whole[flat[keep]] = rows
+        assembled.append(whole)
+    return assembled
+
+
+def _some(indices: torch.Tensor) -> str:
+    shown = ", ".join(str(int(i)) for i in indices[:_SHOWN])
+    return shown + (", ..." if len(indices) > _SHOWN else "")
+
+
+def gather_indexed(
+    indices: torch.Tensor,
+    size: int,
+    *values: torch.Tensor,
+    padding: torch.Tensor | None = None,
+) -> list[torch.Tensor] | None:
+    """Gather every rank's rows into whole tensors on rank 0, in dataset index order.
+
+    ``indices`` (n,) gives the sample index of each of this rank's rows; each of ``values`` has
+    n rows (outputs, labels, ...). ``padding`` (n,) marks rows that only repeat a sample to even
+    out the shards (see :func:`padding_rows`); they are dropped. Rank 0 checks that every index
+    in ``range(size)`` arrived exactly once and returns the ``(size, ...)`` tensors on the CPU;
+    the other ranks return None. A gap or a duplicate raises :class:`CoverageError` on every
+    rank (rank 0 names the indices). Only tensor collectives are used (``gather``), on the
+    device the backend needs.
+    """
+    if len(indices) and any(len(v) != len(indices) for v in values):
+        raise ValueError(
+            f"every tensor must have one row per index ({len(indices)}), but got "
+            f"{[len(v) for v in values]}"
+        )
+    marked = indices.to(torch.int64).cpu().clone()
+    if padding is not None:
+        marked[padding.cpu()] = -1
+    if not is_distributed():
+        return assemble([marked], [[v] for v in values], size)
+    device = collective_device(values[0].device if values else None)
+    shapes = torch.tensor([len(marked), size], dtype=torch.int64, device=device)
+    every = [torch.empty_like(shapes) for _ in range(world_size())]
+    torch.distributed.all_gather(every, shapes)
+    lengths = [int(s[0]) for s in every]
+    sizes = {int(s[1]) for s in every}
+    if len(sizes) != 1:
+        raise CoverageError(
+            f"the ranks evaluate datasets of different sizes ({sorted(sizes)}); every rank "
+            "must pass the same dataset"
+        )
+    longest = max(lengths)
+    received = _gather(_pad(marked, longest, -1).to(device))
+    received_values = []
+    for value in values:
+        transport = value.to(torch.uint8) if value.dtype == torch.bool else value
+        parts = _gather(_pad(transport, longest, 0).to(device))
+        if parts is not None and value.dtype == torch.bool:
+            parts = [p.to(torch.bool) for p in parts]
+        received_values.append(parts)
+    problem = ""
+    assembled: list[torch.Tensor] | None = None
+    if received is not None:
+        try:
+            assembled = assemble(
+                [r[:n] for r, n in zip(received, lengths, strict=True)],
+                [[p[:n] for p, n in zip(parts, lengths, strict=True)] for parts in received_values],
+                size,
+            )
+        except CoverageError as exc:
+            problem = str(exc)
+    (failed,) = broadcast_ints([int(bool(problem))] if is_main() else None, 1)
+    if failed:
+        raise CoverageError(
+            problem
+            or "rank 0 found that the evaluation pass did not cover the dataset exactly "
+            "once; the indices are named in rank 0's error"
+        )
+    return assembled
+
+
+def _pad(tensor: torch.Tensor, length: int, fill: int) -> torch.Tensor:
+    if len(tensor) == length:
+        return tensor.contiguous()
+    shape = (length - len(tensor), *tensor.shape[1:])
+    extra = torch.full(shape, fill, dtype=tensor.dtype, device=tensor.device)
+    return torch.cat([tensor, extra])
+
+
+def _gather(tensor: torch.Tensor) -> list[torch.Tensor] | None:
+    """``dist.gather`` to rank 0: the list of every rank's tensor there, None elsewhere."""
+    parts = [torch.empty_like(tensor) for _ in range(world_size())] if is_main() else None
+    torch.distributed.gather(tensor, parts, dst=MAIN)
+    return parts

@@ -1,0 +1,398 @@
+"""Lineages under a process group: shards, the gather of indexed outputs, one shared decision.
+
+The fast tests need no process group: the assembly of gathered rows, the padding of torch's
+``DistributedSampler`` and the epochs the wrapped loader gives it. The slow ones start two gloo
+ranks with ``torch.multiprocessing`` (spawn, file rendezvous in ``tmp_path``; the jobs are in
+``tests/distributed_jobs.py``) and one run of ``recipes/torchrun_loop.py`` under ``torchrun``.
+
+Outside references: ``torch.utils.data.DistributedSampler`` itself (its docs: without
+``drop_last`` it pads the index list by repeating samples until it divides evenly, and
+``set_epoch`` must be called before every epoch for the shuffling to change), scikit-learn's
+``accuracy_score`` for the held-out figures, ``torch.testing.assert_close`` tolerances.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+import torch
+from conftest import TinyNet, blobs
+from distributed_jobs import (
+    AUGMENTED_FEATURES,
+    BATCH,
+    EPOCHS,
+    HIDDEN,
+    TRAIN_SIZE,
+    Augmented,
+    collectives_job,
+    lineage_job,
+    run,
+)
+from sklearn.metrics import accuracy_score
+from torch.utils.data import DataLoader, DistributedSampler
+
+import filial
+from filial import distributed
+from filial.checkpoint import load_checkpoint
+from filial.data import EpochLoader, Replay, derive_seed, training_loader
+from filial.demo import MLP, mail_room
+from filial.distributed import CoverageError, assemble, padding_rows
+from filial.generation import predict
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def _shards(size: int, world: int) -> list[DistributedSampler]:
+    return [
+        DistributedSampler(range(size), num_replicas=world, rank=r, shuffle=False)
+        for r in range(world)
+    ]
+
+
+# -- the assembly of gathered rows (no process group) -------------------------------------
+
+
+@pytest.mark.parametrize(("size", "world"), [(7, 2), (8, 2), (10, 3), (1, 2), (5, 4)])
+def test_padding_rows_are_the_samplers_repeats(size, world):
+    """The positions padding_rows marks are exactly DistributedSampler's extra indices."""
+    kept, repeated = [], []
+    for sampler in _shards(size, world):
+        order = torch.tensor(list(sampler))
+        mask = padding_rows(sampler)
+        assert len(mask) == len(order) == sampler.num_samples
+        kept += order[~mask].tolist()
+        repeated += order[mask].tolist()
+    assert sorted(kept) == list(range(size))  # every sample once, without the repeats
+    # torch pads by repeating the first indices of the list: total_size - size of them
+    assert len(repeated) == world * -(-size // world) - size
+    assert all(i < size for i in repeated)
+
+
+def test_odd_dataset_with_padding_gives_each_index_once():
+    size, world = 7, 2
+    indices, outputs, labels = [], [], []
+    for sampler in _shards(size, world):
+        order = torch.tensor(list(sampler))
+        marked = order.clone()
+        marked[padding_rows(sampler)] = -1
+        indices.append(marked)
+        outputs.append(torch.stack([order * 10.0, -order.float()], dim=1))
+        labels.append(order % 2 == 0)  # bool labels come back as bools
+    assert sum(len(i) for i in indices) == 8  # one padding duplicate
+    whole, flags = assemble(indices, [outputs, labels], size)
+    expected = torch.arange(size)
+    assert torch.equal(whole, torch.stack([expected * 10.0, -expected.float()], dim=1))
+    assert torch.equal(flags, expected % 2 == 0)
+
+
+def test_a_missing_index_is_named():
+    order = [torch.tensor([0, 2, 4, 6]), torch.tensor([1, 3, 5])]  # 7 is missing
+    values = [[torch.zeros(4, 2), torch.zeros(3, 2)]]
+    with pytest.raises(CoverageError, match=r"1 of 8 sample indices are missing: 7"):
+        assemble(order, values, 8)
+
+
+def test_duplicates_and_indices_beyond_the_dataset_are_named():
+    order = [torch.tensor([0, 1, 2]), torch.tensor([2, 3, 9])]
+    values = [[torch.zeros(3), torch.zeros(3)]]
+    with pytest.raises(CoverageError) as caught:
+        assemble(order, values, 4)
+    message = str(caught.value)
+    assert "1 rows name indices beyond 3: 9" in message
+    assert "1 sample indices arrived more than once" in message and ": 2" in message
+
+
+def test_gather_in_one_process_is_the_assembly():
+    assert not distributed.is_distributed()
+    indices = torch.tensor([2, 0, 1, 0])
+    padding = torch.tensor([False, False, False, True])
+    (rows,) = distributed.gather_indexed(indices, 3, indices * 2.0, padding=padding)
+    assert rows.tolist() == [0.0, 2.0, 4.0]
+    with pytest.raises(CoverageError, match="more than once"):
+        distributed.gather_indexed(indices, 3, indices * 2.0)
+
+
+# -- epochs of a DistributedSampler (no process group) ------------------------------------
+
+
+class _Noting(DistributedSampler):
+    def __init__(self, *args, **kwargs):
+        super().__init__(*args, **kwargs)
+        self.epochs: list[int] = []
+
+    def set_epoch(self, epoch):
+        super().set_epoch(epoch)
+        self.epochs.append(epoch)
+
+
+def test_the_wrapped_loader_tells_the_sampler_each_epoch():
+    """Epoch k of gen.loader's shard is DistributedSampler's order after set_epoch(k), and
+    the two ranks' shards of each epoch are complementary."""
+    data = blobs(10)
+    samplers = [_Noting(data, num_replicas=2, rank=r, shuffle=True, seed=5) for r in range(2)]
+    loaders = [training_loader(DataLoader(data, batch_size=2, sampler=s), None) for s in samplers]
+    assert all(isinstance(loader, EpochLoader) for loader in loaders)
+    seen = [[] for _ in loaders]
+    for _epoch in range(3):
+        for rank, loader in enumerate(loaders):
+            order = []
+            for inputs, _labels, targets in loader:
+                assert targets is None
+                # the rows tell their sample: inputs are unique per sample in blobs
+                order += [int((data.tensors[0] == row).all(dim=1).nonzero()) for row in inputs]
+            seen[rank].append(order)
+    for sampler in samplers:
+        assert sampler.epochs == [0, 1, 2]
+    reference = _Noting(data, num_replicas=2, rank=0, shuffle=True, seed=5)
+    for epoch in range(3):
+        reference.set_epoch(epoch)  # what a plain distributed loop does by hand (torch docs)
+        assert seen[0][epoch] == list(reference)
+        assert sorted(seen[0][epoch] + seen[1][epoch]) == list(range(10))
+    assert seen[0][0] != seen[0][1] != seen[0][2]
+
+
+def test_a_loader_without_set_epoch_is_rebuilt_as_before():
+    loader = training_loader(DataLoader(blobs(10), batch_size=4, shuffle=True), None)
+    assert type(loader) is DataLoader
+
+
+def test_each_generation_gives_the_sampler_its_own_seed(tmp_path):
+    """DistributedSampler shuffles by seed + epoch: the lineage derives the seed per generation
+    (the same for every rank, and again on a rerun), and the epochs start at 0 each time."""
+
+    def seeds(run_dir):
+        data = blobs(24)
+        sampler = _Noting(data, num_replicas=2, rank=1, shuffle=True, seed=0)
+        lineage = filial.Lineage(
+            TinyNet(),
+            DataLoader(data, batch_size=4, sampler=sampler),
+            DataLoader(blobs(12, seed=2), batch_size=6),
+            run_dir=run_dir,
+            max_generations=2,
+            patience=5,
+            seed=7,
+            tensorboard=False,
+            progress=False,
+        )
+        found = []
+        for gen in lineage:
+            sampler.epochs.clear()
+            optimizer = torch.optim.SGD(gen.model.parameters(), lr=0.2)
+            for _epoch in range(2):
+                for inputs, labels, targets in gen.loader:
+                    loss = gen.loss(gen.model(inputs), labels, targets)
+                    optimizer.zero_grad()
+                    loss.backward()
+                    optimizer.step()
+            found.append((sampler.seed, list(sampler.epochs)))
+            gen.finish(gen.model)
+        return found
+
+    first = seeds(tmp_path / "a")
+    assert [s for s, _ in first] == [derive_seed(7, g, 2) for g in range(3)]
+    assert len({s for s, _ in first}) == 3
+    assert all(epochs == [0, 1] for _, epochs in first)
+    assert seeds(tmp_path / "b") == first
+
+
+# -- two ranks ---------------------------------------------------------------------------
+
+
+@pytest.mark.slow
+def test_collectives_on_two_ranks(tmp_path):
+    reports = run(collectives_job, tmp_path)
+    zero, one = reports
+    # DistributedSampler's shards of 7 samples: rank 0 gets 0, 2, 4, 6; rank 1 gets 1, 3, 5
+    # and a repeat of sample 0 (its padding)
+    assert zero["shard"] == [0, 2, 4, 6] and one["shard"] == [1, 3, 5, 0]
+    assert zero["padding"] == [False] * 4 and one["padding"] == [False, False, False, True]
+    expected = torch.arange(7)
+    assert zero["gathered"] == [
+        torch.stack([expected * 10.0, expected + 0.5], dim=1).tolist(),
+        (expected % 3).tolist(),
+    ]
+    assert one["gathered"] is None
+    assert zero["missing"].startswith("CoverageError") and "missing: 5" in zero["missing"]
+    assert one["missing"].startswith("CoverageError") and "rank 0's error" in one["missing"]
+    assert "more than once" in zero["duplicate"] and ": 0" in zero["duplicate"]
+    assert one["duplicate"].startswith("CoverageError")
+    assert zero["rank_zero_failed"] == "OSError: disk full (simulated)"
+    assert (
+        one["rank_zero_failed"].startswith("RankZeroFailed")
+        and "writing x" in one["rank_zero_failed"]
+    )
+    assert zero["broadcast"] == one["broadcast"] == [4, 2]
+    assert zero["sums"] == one["sums"] == [3.0, 4.0]
+    assert zero["running_mean"] == one["running_mean"] == [1.0, 1.0]  # rank 0's buffers
+    for report in reports:
+        assert "rank(s) [1] differ from rank 0's" in report["replicas_differ"]
+        assert "DistributedDataParallel" in report["replicas_differ"]
+        assert "rank(s) [1] built the Lineage with other settings" in report["settings_differ"]
+        assert "DistributedDataParallel" in report["finish_unsynced"]
+    assert any("no DistributedSampler" in w for w in zero["warnings"])
+    assert one["warnings"] == []  # the other ranks print nothing
+    # the refused generation wrote nothing; the refused settings made no run directory
+    assert zero["plain_files"] == [".lock", "lineage.json"]
+    assert not (tmp_path / "seeds").exists()
+
+
+@pytest.fixture(scope="module")
+def two_ranks(tmp_path_factory):
+    root = tmp_path_factory.mktemp("ranks")
+    return root, run(lineage_job, root)
+
+
+def _same(a, b) -> bool:
+    return json.dumps(a, sort_keys=True) == json.dumps(b, sort_keys=True)
+
+
+def _without_seconds(records):
+    return [{k: v for k, v in r.items() if k != "seconds"} for r in records]
+
+
+@pytest.mark.slow
+def test_both_ranks_report_the_same_records_and_stop_together(two_ranks):
+    root, (zero, one) = two_ranks
+    for name in ("straight", "resumed", "managed", "online"):
+        assert _same(zero[name]["records"], one[name]["records"]), name
+        state = json.loads((root / name / "lineage.json").read_text(encoding="utf-8"))
+        assert _same(state["records"], zero[name]["records"]), name
+    straight = zero["straight"]
+    assert straight["stop_reason"] == one["straight"]["stop_reason"] is not None
+    assert straight["best"] == one["straight"]["best"]
+    assert len(straight["records"]) >= 2
+    # only rank 0 writes TensorBoard runs: one summary event file per lineage
+    assert len(list((root / "straight" / "tb" / "summary").iterdir())) == 1
+
+
+@pytest.mark.slow
+def test_the_store_holds_one_target_per_sample_as_one_process_computes_it(two_ranks):
+    """Rank 0's store equals a single-process teacher pass with the same checkpoint, and the
+    recorded figures are those of the whole training and held-out sets."""
+    root, (zero, _) = two_ranks
+    room = mail_room(noise=0.3, seed=0, train_size=TRAIN_SIZE, heldout_size=299)
+    for record in zero["straight"]["records"]:
+        directory = root / "straight" / f"gen{record['generation']}"
+        manifest = json.loads((directory / "targets.json").read_text(encoding="utf-8"))
+        assert manifest["count"] == TRAIN_SIZE and manifest["shape"] == [TRAIN_SIZE, 1, 10]
+        model = MLP(HIDDEN)()
+        model.load_state_dict(load_checkpoint(root / "straight" / record["checkpoint"]))
+        reference = predict(model, DataLoader(room.train, batch_size=BATCH), seed=0)
+        targets = torch.from_numpy(np.load(directory / "targets.npy"))[:, 0]
+        torch.testing.assert_close(targets, reference.outputs)  # float32 store
+        heldout = torch.from_numpy(np.load(directory / "heldout.npy"))
+        torch.testing.assert_close(heldout, predict(model, DataLoader(room.heldout), 0).outputs)
+        # scikit-learn's accuracy over every held-out and training sample
+        labels = room.heldout.tensors[1].numpy()
+        assert record["heldout"] == pytest.approx(accuracy_score(labels, heldout.argmax(1)))
+        noisy = room.train.tensors[1].numpy()
+        assert record["train"] == pytest.approx(accuracy_score(noisy, targets.argmax(1)))
+
+
+@pytest.mark.slow
+def test_each_epoch_tells_the_sampler_its_epoch_and_shards_complement(two_ranks):
+    _, (zero, one) = two_ranks
+    generations = len(zero["straight"]["records"])
+    calls = zero["straight"]["calls"]
+    assert calls == one["straight"]["calls"]  # the same seed and epoch on both ranks
+    assert len(calls) == generations * EPOCHS
+    for g in range(generations):
+        block = calls[g * EPOCHS : (g + 1) * EPOCHS]
+        assert [epoch for _, epoch in block] == list(range(EPOCHS))
+        assert {seed for seed, _ in block} == {derive_seed(3, g, 2)}
+    for mine, theirs in zip(zero["straight"]["orders"], one["straight"]["orders"], strict=True):
+        # 601 samples: 301 each, sample 0 repeated once as DistributedSampler's padding
+        assert len(mine) == len(theirs) == 301
+        assert set(mine) | set(theirs) == set(range(TRAIN_SIZE))
+        assert len(set(mine) & set(theirs)) <= 1
+    orders = zero["straight"]["orders"]
+    assert orders[0] != orders[1]  # shuffling changes from epoch to epoch
+
+
+@pytest.mark.slow
+def test_a_resumed_two_rank_run_equals_one_that_went_straight_through(two_ranks):
+    _, (zero, one) = two_ranks
+    assert zero["resumed_from"] == one["resumed_from"] == 1
+    assert _without_seconds(zero["resumed"]["records"]) == _without_seconds(
+        zero["straight"]["records"]
+    )
+
+
+@pytest.mark.slow
+def test_fit_epochs_trains_in_ddp_and_sums_the_epoch_figures(two_ranks):
+    _, (zero, one) = two_ranks
+    records = zero["managed"]["records"]
+    assert all(len(r["epochs"]) == EPOCHS for r in records)
+    # running accuracy over both shards: a fraction of all 601 (+1 padding) training samples
+    for record in records:
+        for entry in record["epochs"]:
+            hits = entry["running_accuracy"] * (TRAIN_SIZE + 1)
+            assert abs(hits - round(hits)) < 1e-6
+    # the same DDP training as the hook loop: the same held-out figures
+    hook = zero["straight"]["records"]
+    assert [r["heldout"] for r in records][:2] == [r["heldout"] for r in hook][:2]
+
+
+@pytest.mark.slow
+def test_an_online_teacher_runs_on_every_rank(two_ranks):
+    root, (zero, _) = two_ranks
+    records = zero["online"]["records"]
+    assert [r["mode"] for r in records][:2] == ["labels", "online"]
+    assert not (root / "online" / "gen0" / "targets.npy").exists()  # nothing cached
+    # generation 0 learns from the labels in both runs, with the same seeds and shards
+    assert records[0]["heldout"] == zero["straight"]["records"][0]["heldout"]
+
+
+@pytest.mark.slow
+def test_replayed_views_are_shared_by_code_and_equal_one_process(two_ranks):
+    """views=3 on an augmenting dataset: the ranks split the (sample, view) codes; the store
+    holds one target per pair, equal to a single process's replayed pass with the checkpoint."""
+    root, (zero, one) = two_ranks
+    assert _same(zero["views"]["records"], one["views"]["records"])
+    dataset = Augmented()
+    replay = Replay(derive_seed(3, 3), 3)  # the lineage's replay for seed=3 (lineage._replay)
+    for record in zero["views"]["records"]:
+        directory = root / "views" / f"gen{record['generation']}"
+        targets = torch.from_numpy(np.load(directory / "targets.npy"))
+        assert targets.shape == (len(dataset), 3, 10)
+        model = MLP(HIDDEN, inputs=AUGMENTED_FEATURES)()
+        model.load_state_dict(load_checkpoint(root / "views" / record["checkpoint"]))
+        alone = predict(model, DataLoader(dataset, batch_size=16), 0, replay=replay)
+        torch.testing.assert_close(targets, alone.outputs.view(len(dataset), 3, 10))
+        assert not torch.equal(targets[:, 0], targets[:, 1])  # the views differ
+
+
+@pytest.mark.slow
+def test_the_recipe_runs_under_torchrun(tmp_path):
+    summary = tmp_path / "summary.json"
+    command = [
+        sys.executable,
+        "-m",
+        "torch.distributed.run",
+        "--standalone",
+        "--nproc-per-node=2",
+        str(ROOT / "recipes" / "torchrun_loop.py"),
+        "--epochs=2",
+        "--generations=1",
+        "--threads=1",
+        f"--run-dir={tmp_path / 'run'}",
+        f"--summary={summary}",
+    ]
+    env = {**os.environ, "OMP_NUM_THREADS": "1"}
+    done = subprocess.run(command, capture_output=True, text=True, timeout=300, env=env)
+    assert done.returncode == 0, done.stderr[-3000:]
+    result = json.loads(summary.read_text(encoding="utf-8"))
+    assert result["world_size"] == 2 and len(result["records"]) == 2
+    assert np.load(tmp_path / "run" / "gen0" / "targets.npy").shape == (1000, 1, 10)
+    assert done.stdout.count("held-out by generation") == 1  # rank 0 alone prints
+    # the same file, launched plainly, runs in one process
+    alone = [sys.executable, *command[5:-2], f"--run-dir={tmp_path / 'one'}", "--generations=0"]
+    done = subprocess.run(alone, capture_output=True, text=True, timeout=300, env=env)
+    assert done.returncode == 0, done.stderr[-3000:]
+    assert "1 process(es)" in done.stdout
