@@ -257,10 +257,11 @@ class Lineage:
         if heldout_probe is not None and (
             heldout_probe.varies or heldout_probe.collate_draws or not heldout_probe.deterministic
         ):
-            log.warning(
+            _say_once(
+                "heldout:" + heldout_probe.fingerprint,
                 "the held-out samples change from fetch to fetch (random augmentation in the "
                 "held-out dataset?), so held-out figures carry that noise too; build the "
-                "held-out dataset without augmentation"
+                "held-out dataset without augmentation",
             )
         labels = getattr(train_probe, "labels", None)
         if isinstance(labels, torch.Tensor) and targets == "ce" and labels.is_floating_point():
@@ -882,6 +883,13 @@ def _replay(train: Probe, views: int, seed: int) -> Replay | None:
 _AUGMENTATION_WARNED: set[str] = set()
 
 
+def _say_once(key: str, message: str) -> None:
+    """A warning about the data, once per dataset in this process, and on rank 0 only."""
+    if key not in _AUGMENTATION_WARNED and distributed.is_main():
+        _AUGMENTATION_WARNED.add(key)
+        log.warning("%s", message)
+
+
 def _check_augmentation(train: Probe, views: int) -> None:
     """Refuse views that cannot be replayed; say once per dataset what a single view means."""
     if not train.replayable:
@@ -902,25 +910,21 @@ def _check_augmentation(train: Probe, views: int) -> None:
                 f"views={views} replays random augmentation by seeding torch's, Python's and "
                 f"numpy's global generators before each sample is fetched, but {why}"
             )
-        if train.fingerprint not in _AUGMENTATION_WARNED:
-            _AUGMENTATION_WARNED.add(train.fingerprint)
-            log.warning("cached targets cannot match the inputs a student sees: %s", why)
+        _say_once(train.fingerprint, f"cached targets cannot match a student's inputs: {why}")
     elif not train.varies and views > 1:
-        log.warning(
-            "views=%d: the training samples do not change with the random seeds, so the %d views "
-            "of a sample are the same input and the cache holds %d copies of each target; "
-            "views=1 gives the same training at a fraction of the teacher pass",
-            views,
-            views,
-            views,
+        _say_once(
+            f"copies{views}:{train.fingerprint}",
+            f"views={views}: the training samples do not change with the random seeds, so the "
+            f"{views} views of a sample are the same input and the cache holds {views} copies of "
+            "each target; views=1 gives the same training at a fraction of the teacher pass",
         )
-    elif train.varies and views == 1 and train.fingerprint not in _AUGMENTATION_WARNED:
-        _AUGMENTATION_WARNED.add(train.fingerprint)
-        log.warning(
+    elif train.varies and views == 1:
+        _say_once(
+            train.fingerprint,
             "the training samples change from fetch to fetch (random augmentation): with views=1 "
             "each student sees every sample in a single replayed augmented view, the one its "
             "cached target was made for. Pass views=4 (say) for more views per sample, or "
-            "teacher_mode='online' for a fresh augmentation with an exact target every step."
+            "teacher_mode='online' for a fresh augmentation with an exact target every step.",
         )
 
 
