@@ -55,7 +55,7 @@ def main() -> None:
     sampler = DistributedSampler(room.train, seed=0) if launched else None
     train_loader = DataLoader(
         room.train,
-        batch_size=args.batch_size // world,
+        batch_size=max(1, args.batch_size // world),
         shuffle=sampler is None,
         sampler=sampler,
         generator=torch.Generator().manual_seed(0),
@@ -91,7 +91,10 @@ def main() -> None:
     result = lineage.result
     seconds = time.perf_counter() - started
     if main_rank:
-        gains = [f"{r['generation']}: {r['heldout']:.3f}" for r in result.records]
+        gains = [
+            f"{r['generation']}: " + ("diverged" if r["heldout"] is None else f"{r['heldout']:.3f}")
+            for r in result.records
+        ]
         print(f"{world} process(es): held-out by generation  {', '.join(gains)}")
         print(f"best generation {result.best}, stopped: {result.stop_reason}, {seconds:.1f} s")
         if args.summary:

@@ -212,6 +212,24 @@ def _error(work) -> str | None:
     return None
 
 
+class FailsOnRankZero:
+    """A metric that raises on rank 0 only (as a user's metric or a full disk might)."""
+
+    def __call__(self, outputs: torch.Tensor, labels: torch.Tensor) -> float:
+        if dist.get_rank() == 0:
+            raise RuntimeError("the metric failed (simulated)")
+        return 0.0
+
+
+def says_zero() -> nn.Module:
+    """A model that predicts class 0 for every input (zero weights, bias towards class 0)."""
+    model = nn.Linear(3, 2)
+    with torch.no_grad():
+        model.weight.zero_()
+        model.bias.copy_(torch.tensor([1.0, 0.0]))
+    return model
+
+
 def collectives_job(rank: int, world: int, rendezvous: str, root: str) -> None:
     """The gather, the broadcasts and the checks of replicas and settings, on two ranks."""
     start(rank, world, rendezvous)
@@ -285,6 +303,39 @@ def collectives_job(rank: int, world: int, rendezvous: str, root: str) -> None:
     report["finish_unsynced"] = _error(lambda: gen.finish(gen.model))
     report["plain_files"] = sorted(p.name for p in (Path(root) / "plain").iterdir())
     unsharded.close()
+
+    # Rank 0 fails while finishing (after the gathers): the other ranks are told, not left
+    # waiting for a decision.
+    failing = filial.Lineage(
+        lambda: nn.Linear(3, 2),
+        sharded,
+        DataLoader(held, batch_size=8),
+        run_dir=Path(root) / "failing",
+        metric=FailsOnRankZero(),
+        tensorboard=False,
+        progress=False,
+    )
+    gen = next(iter(failing))
+    report["finish_failed"] = _error(lambda: gen.finish(gen.model))
+    failing.close()
+
+    # fit_epochs sums its epoch figures over the ranks. Unshuffled shards that differ on
+    # purpose: rank 0 holds the even samples (label 0), rank 1 the odd ones (label 1), and the
+    # model says 0 everywhere (lr 0): 0.5 over both shards, 1.0 or 0.0 for one alone.
+    halves = TensorDataset(torch.zeros(16, 3), torch.tensor([0, 1] * 8))
+    split = DataLoader(halves, batch_size=4, sampler=DistributedSampler(halves, shuffle=False))
+    summed = filial.Lineage(
+        says_zero,
+        split,
+        DataLoader(held, batch_size=8),
+        run_dir=Path(root) / "summed",
+        tensorboard=False,
+        progress=False,
+    )
+    gen = next(iter(summed))
+    filial.fit_epochs(1, lambda params: torch.optim.SGD(params, lr=0.0), progress=False)(gen)
+    report["summed_accuracy"] = gen.history[0]["running_accuracy"]
+    summed.close()
     write(Path(root) / "out", rank, report)
     dist.destroy_process_group()
 

@@ -162,7 +162,8 @@ def wrap(model: nn.Module) -> nn.Module:
 
 
 def align_replicas(model: nn.Module) -> None:
-    """Check that every rank holds the same parameters, and give every rank rank 0's buffers.
+    """Check that every rank holds the same parameters; give every rank rank 0's (exactly) and
+    its buffers.
 
     Note: replicas. The evaluation passes score each shard on its own rank, so the shards'
     outputs only belong together if every rank's model is the one rank 0 checkpoints.
@@ -200,6 +201,12 @@ def align_replicas(model: nn.Module) -> None:
                 "filial.fit_epochs, which does it), so that every rank trains the same model."
             )
     with torch.no_grad():
+        # The check above is coarse (sums of all parameters); rank 0's exact parameters are
+        # sent as well, so every shard is scored by the very weights rank 0 checkpoints.
+        for param in model.parameters():
+            sent = param.detach().to(collective_device(param.device)).contiguous()
+            torch.distributed.broadcast(sent, src=MAIN)
+            param.copy_(sent.to(param.device, param.dtype))
         for buffer in model.buffers():
             sent = buffer.detach()
             if sent.dtype == torch.bool:

@@ -295,6 +295,7 @@ class Generation:
         self.teacher_model = teacher_model  # online mode: the teacher runs on every batch
         self.history: list[dict[str, float]] = []
         self.record: dict[str, Any] | None = None
+        self.decided: tuple[int, int] | None = None  # ranks other than 0: rank 0's (stop, count)
         self._setup = setup
         self._on_finish = on_finish
         self._loader: DataLoader | None = None
@@ -352,9 +353,38 @@ class Generation:
         test = evaluate(model, setup.test_loader, seed) if setup.test_loader is not None else None
         if passes is None or heldout is None:
             # Note: several processes. Only rank 0 holds the whole passes: it scores, writes and
-            # decides (in on_finish); this rank takes the lineage's decision, without a record.
+            # decides (in on_finish), then sends (ok, stop, finished generations); this rank
+            # waits for that word and takes the lineage's decision, without a record. A failure
+            # on rank 0 is sent too, so that no rank waits for a decision that never comes.
+            ok, stop, finished = distributed.broadcast_ints(None, 3)
+            if not ok:
+                raise distributed.RankZeroFailed(
+                    f"rank 0 failed while finishing generation {self.index} (its output has the "
+                    f"error), so rank {distributed.rank()} stops too"
+                )
+            self.decided = (stop, finished)
             self.record = self._on_finish(self, None, None)
             return self.record
+        try:
+            self.record = self._finish_here(model, passes, heldout, test)
+        except BaseException:
+            if distributed.is_distributed():
+                distributed.broadcast_ints([0, 0, 0], 3)
+            raise
+        if distributed.is_distributed():
+            stop = int(bool(self.record.get("stop")))
+            distributed.broadcast_ints([1, stop, self.index + 1], 3)
+        return self.record
+
+    def _finish_here(
+        self,
+        model: nn.Module,
+        passes: tuple[Predictions, torch.Tensor],
+        heldout: Predictions,
+        test: Predictions | None,
+    ) -> dict[str, Any]:
+        """Score, write and hand the record to the lineage (in the one process that writes)."""
+        setup = self._setup
         train, train_outputs = passes
         metric = setup.metric
         diverged = not (
@@ -396,8 +426,7 @@ class Generation:
         record["checkpoint_sha256"] = teacher_sha
         record["epochs"] = list(self.history)
         record["seconds"] = time.perf_counter() - self._started
-        self.record = self._on_finish(self, record, heldout)
-        return self.record
+        return self._on_finish(self, record, heldout)
 
     def _target_statistics(self, train: Predictions) -> dict[str, Any]:
         stats: dict[str, Any] = {}

@@ -584,8 +584,7 @@ class Lineage:
         def on_finish(
             gen: Generation, record: dict[str, Any] | None, _: Predictions | None
         ) -> dict[str, Any]:
-            if record is None:  # a rank other than 0: rank 0 writes the baseline's record
-                distributed.broadcast_ints(None, 1)
+            if record is None:  # a rank other than 0: rank 0 has written the baseline's record
                 return json.loads(state_path.read_text(encoding="utf-8"))
             record.update(
                 kind="matched-baseline",
@@ -593,8 +592,6 @@ class Lineage:
                 checkpoint=f"{BASELINE_DIR}/{record['checkpoint']}",
             )
             atomic_write_json(state_path, record)
-            if distributed.is_distributed():
-                distributed.broadcast_ints([1], 1)
             return record
 
         self._seed_generation(0)
@@ -846,15 +843,14 @@ class Lineage:
                 else ""
             )
         )
-        if distributed.is_distributed():  # the decision, for the other ranks' _follow
-            distributed.broadcast_ints([int(decision.stop), len(self._records)], 2)
-        return record
+        return record  # Generation.finish sends the other ranks the word (see _follow)
 
     def _follow(self, gen: Generation) -> dict[str, Any]:
-        """A rank other than 0: take rank 0's stop decision (broadcast), then its records from
-        ``lineage.json``, so that every rank holds the same records and leaves the loop at the
-        same generation."""
-        stop, finished = distributed.broadcast_ints(None, 2)
+        """A rank other than 0: take rank 0's stop decision (broadcast by ``Generation.finish``),
+        then its records from ``lineage.json``, so that every rank holds the same records and
+        leaves the loop at the same generation."""
+        assert gen.decided is not None  # set by finish from rank 0's broadcast
+        stop, finished = gen.decided
         state = self._read_state()
         records, decision = list(state["records"]), state.get("decision") or {}
         if (
