@@ -25,7 +25,7 @@ def test_bench_quick_mode_writes_its_table(tmp_path):
     report = json.loads(out.read_text())
     assert report["quick"] is True and report["cores"] >= 1
     names = [row["figure"] for row in report["table"]]
-    assert len(names) == 10 and len(set(names)) == 10
+    assert len(names) == 11 and len(set(names)) == 11
     for row in report["table"]:
         assert isinstance(row["value"], float) and row["value"] > 0
         assert isinstance(row["met"], bool) and row["goal"].split()[0] in ("<=", ">=", "<")
@@ -33,6 +33,9 @@ def test_bench_quick_mode_writes_its_table(tmp_path):
         for side in ("generation0", "student"):
             figure = report["figures"][key][side]
             assert figure["ratio_min"] <= figure["ratio_median"] <= figure["ratio_max"]
+    cifar = report["figures"]["cache_versus_online_cifar"]
+    assert cifar["ratio_min"] <= cifar["ratio_median"] <= cifar["ratio_max"]
+    assert (cifar["depth"], cifar["images"]) == (8, 64)  # the quick mode's sizes
     sizes = report["figures"]["compact_store"]
     assert [sizes[c]["full"] for c in ("10", "100", "1000")] == [20, 200, 2000]
     assert sizes["bytes_per_sample"] == sizes["1000"]["top_k_10"] == 40
