@@ -145,6 +145,9 @@ def test_rerun_resumes_and_other_recipes_are_refused(small_recipe, tmp_path, cap
     err = capsys.readouterr().err
     assert "generations.temperature: 1.0 in the run, 4.0 now" in err and "--fresh" in err
     assert {p: p.stat().st_mtime_ns for p in run_dir.rglob("student.pt")} == stamps
+    # the device says where a run trains, not what it is: a run may move on resume
+    assert cli.main([*args, "--set", 'training.device="cpu"']) == 0
+    assert {p: p.stat().st_mtime_ns for p in run_dir.rglob("student.pt")} == stamps
     assert cli.main([*args, "--set", "generations.max=1", "--fresh"]) == 0
     state = json.loads((run_dir / "seed0" / "lineage.json").read_text())
     assert len(state["records"]) == 2
@@ -161,6 +164,7 @@ def test_rerun_resumes_and_other_recipes_are_refused(small_recipe, tmp_path, cap
         (('baseline = "matched"', "baseline = 'best'"), "run.baseline should be one of"),
         (("patience = 5", "patience = 0"), "generations.patience should be >= 1"),
         (("[run]", "[extra]\nx = 1\n[run]"), "unknown section [extra]"),
+        (("[training]", '[training]\ndevice = "gpu0"'), "training.device = 'gpu0' is not a"),
     ],
 )
 def test_bad_recipes_exit_2_naming_the_key_and_write_nothing(tmp_path, capsys, change, words):

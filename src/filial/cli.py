@@ -117,6 +117,7 @@ def plan(recipe_path: str, overrides: Sequence[str], run_dir: str | None) -> Pla
         StopRule(g["max"], g["patience"], g["min_gain"])
     except ValueError as exc:
         raise recipes.RecipeError(f"[generations]: {exc}") from exc
+    recipes.training_device(recipe["training"])  # a wrong device is a recipe error, here
     if g["views"] != 1 and g["teacher"] == "online":
         raise recipes.RecipeError(
             "generations.views caches several augmented views per sample, but teacher = "
@@ -216,10 +217,11 @@ def _lineage(p: Plan, run_dir: Path, seed: int, quiet: bool, fresh: bool = False
 def _train(p: Plan, run_dir: Path, lineages: list[Lineage], on_terminal: bool) -> None:
     training = p.recipe["training"]
     optimizer = recipes.build_optimizer(training)
+    device = recipes.training_device(training)
 
     def make_fit(count: int):
         scheduler = recipes.build_scheduler(training, count)
-        return fit_epochs(count, optimizer, scheduler, progress=on_terminal)
+        return fit_epochs(count, optimizer, scheduler, progress=on_terminal, device=device)
 
     fit = make_fit(training["epochs"])
     for lineage in lineages:

@@ -47,9 +47,12 @@ import tomllib
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from .losses import LOSS_KINDS
+
+if TYPE_CHECKING:
+    import torch
 from .store import STORE_DTYPES
 
 MARKER = "# filial run recipe (filial.run/1): resolved by filial run, read by filial report"
@@ -93,6 +96,9 @@ _SCHEMA: dict[str, dict[str, Field]] = {
         "schedule": Field("choice", "none", ("none", "cosine", "step")),
         "step_size": Field("int", 30, minimum=1),
         "gamma": Field("float", 0.1, minimum=0.0),
+        "device": Field(
+            "str", "auto", help="auto (CUDA when available, else the CPU), cpu, cuda, cuda:1 ..."
+        ),
     },
     "generations": {
         "targets": Field("choice", "ce", LOSS_KINDS),
@@ -228,6 +234,7 @@ class Recipe:
         """The values that decide a run's results (not where it is written)."""
         values = copy.deepcopy(self.values)
         values["run"].pop("run_dir", None)
+        values["training"].pop("device", None)  # where it trains; a run may move on resume
         return values
 
     def to_toml(self) -> str:
@@ -356,6 +363,26 @@ def differences(old: dict[str, Any], new: dict[str, Any]) -> list[str]:
             if a.get(key) != b.get(key):
                 found.append(f"{section}.{key}: {a.get(key)!r} in the run, {b.get(key)!r} now")
     return found
+
+
+def training_device(training: dict[str, Any]) -> torch.device:
+    """The device ``training.device`` names; ``auto`` is CUDA when available, else the CPU."""
+    import torch
+
+    name = training["device"]
+    if name == "auto":
+        return torch.device("cuda" if torch.cuda.is_available() else "cpu")
+    try:
+        device = torch.device(name)
+    except RuntimeError as exc:
+        raise RecipeError(
+            f"training.device = {name!r} is not a device; use auto, cpu, cuda or cuda:N"
+        ) from exc
+    if device.type == "cuda" and not torch.cuda.is_available():
+        raise RecipeError(
+            f"training.device = {name!r}, but this torch sees no CUDA device; use auto or cpu"
+        )
+    return device
 
 
 def build_optimizer(training: dict[str, Any]) -> Callable[[Any], Any]:
