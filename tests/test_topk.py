@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import logging
+
 import numpy as np
 import pytest
 import torch
@@ -140,3 +142,20 @@ def test_top_k_loss_takes_int32_classes():
     wide = soft_cross_entropy_top_k(z, TopKTargets(top.values, top.indices), 1.5)
     narrow = soft_cross_entropy_top_k(z, TopKTargets(top.values, top.indices.int()), 1.5)
     torch.testing.assert_close(wide, narrow)
+
+
+def test_a_top_k_store_no_smaller_than_the_full_one_is_said(loaders, tmp_path, caplog):
+    """Three outputs, top_k=2 in float16: 2 * (2 + 2) = 8 bytes against 3 * 2 = 6 in full."""
+    train, heldout, _ = loaders
+    caplog.set_level(logging.WARNING, logger="filial")
+    lineage = filial.Lineage(
+        TinyNet(),
+        train,
+        heldout,
+        run_dir=tmp_path / "r",
+        top_k=2,
+        progress=False,
+        tensorboard=False,
+    )
+    assert any("stores 8 bytes per sample" in r.getMessage() for r in caplog.records)
+    lineage.close()

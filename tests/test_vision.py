@@ -250,6 +250,7 @@ def test_cifar_recipes_run_end_to_end_over_fake_data(name, tmp_path, monkeypatch
     assert state["records"][-1]["stop"]["reason"] == "max-generations"
     classes = 100 if name.startswith("cifar100") else 10
     targets = np.load(run_dir / "seed0" / "gen0" / "targets.npy")  # generation 1's teacher
-    assert targets.shape == (48, 1, classes)
+    assert targets.shape == (48, 4, classes)  # the recipes' four replayed views per image
+    assert not np.array_equal(targets[:, 0], targets[:, 1])  # views of other crops and flips
     saved = tomllib.loads((run_dir / "recipe.toml").read_text())
     assert saved["data"]["source"] == "fake" and saved["model"]["depth"] == 8

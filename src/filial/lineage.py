@@ -288,6 +288,16 @@ class Lineage:
                 f"top_k={top_k} is more than the model's {self._width} outputs; use at most "
                 f"top_k={self._width}"
             )
+        if top_k is not None:
+            value = np.dtype(store_dtype).itemsize
+            compact = top_k * (value + (2 if self._width <= np.iinfo(np.int16).max else 4))
+            if compact >= self._width * value:
+                _say_once(
+                    f"top_k{top_k}:{self._width}:{store_dtype}",
+                    f"top_k={top_k} stores {compact} bytes per sample and view (values and "
+                    f"class indices), no fewer than the {self._width * value} of the full store "
+                    f"of {self._width} outputs; top_k=None keeps every output for less",
+                )
         self.model_fn = model_fn
         self.run_dir = Path(run_dir)
         # Under a process group only rank 0 prints and writes TensorBoard runs.
