@@ -252,6 +252,11 @@ def collectives_job(rank: int, world: int, rendezvous: str, root: str) -> None:
             indices[keep], size, outputs[keep], padding=padding[keep]
         )
     )
+    # Rank 1's rows do not fit its indices: refused on both ranks before any row is sent.
+    short = outputs[:-1] if rank == 1 else outputs
+    report["uneven"] = _error(
+        lambda: distributed.gather_indexed(indices, size, short, padding=padding)
+    )
     # The padding row sent as if it were a sample of its own: a duplicate, refused.
     report["duplicate"] = _error(lambda: distributed.gather_indexed(indices, size, outputs))
 

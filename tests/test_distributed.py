@@ -220,6 +220,8 @@ def test_collectives_on_two_ranks(tmp_path):
     assert one["gathered"] is None
     assert zero["missing"].startswith("CoverageError") and "missing: 5" in zero["missing"]
     assert one["missing"].startswith("CoverageError") and "rank 0's error" in one["missing"]
+    assert zero["uneven"] == one["uneven"]
+    assert zero["uneven"].startswith("ValueError: rank(s) [1] passed tensors whose rows")
     assert "more than once" in zero["duplicate"] and ": 0" in zero["duplicate"]
     assert one["duplicate"].startswith("CoverageError")
     assert zero["rank_zero_failed"] == "OSError: disk full (simulated)"

@@ -311,20 +311,31 @@ def gather_indexed(
     rank (rank 0 names the indices). Only tensor collectives are used (``gather``), on the
     device the backend needs.
     """
-    if len(indices) and any(len(v) != len(indices) for v in values):
+    uneven = any(len(v) != len(indices) for v in values) or (
+        padding is not None and len(padding) != len(indices)
+    )
+    if uneven and not is_distributed():
         raise ValueError(
             f"every tensor must have one row per index ({len(indices)}), but got "
             f"{[len(v) for v in values]}"
         )
     marked = indices.to(torch.int64).cpu().clone()
-    if padding is not None:
+    if padding is not None and not uneven:
         marked[padding.cpu()] = -1
     if not is_distributed():
         return assemble([marked], [[v] for v in values], size)
     device = collective_device(values[0].device if values else None)
-    shapes = torch.tensor([len(marked), size], dtype=torch.int64, device=device)
+    # Every rank says how many rows it sends, its dataset size and whether its rows fit its
+    # indices, before any of them sends rows: a problem on one rank stops all of them here.
+    shapes = torch.tensor([len(marked), size, int(uneven)], dtype=torch.int64, device=device)
     every = [torch.empty_like(shapes) for _ in range(world_size())]
     torch.distributed.all_gather(every, shapes)
+    unfit = [r for r, s in enumerate(every) if int(s[2])]
+    if unfit:
+        raise ValueError(
+            f"rank(s) {unfit} passed tensors whose rows do not match their indices; every "
+            "tensor must have one row per index"
+        )
     lengths = [int(s[0]) for s in every]
     sizes = {int(s[1]) for s in every}
     if len(sizes) != 1:
