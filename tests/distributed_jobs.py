@@ -14,6 +14,7 @@ import random
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 import torch
 import torch.distributed as dist
 from torch import nn
@@ -130,11 +131,20 @@ def lineage_job(rank: int, world: int, rendezvous: str, root: str) -> None:
     hook_loop(first, stop_after=0)
     first.close()
     dist.barrier()
+    if rank == 0:  # damage generation 0's targets: the resumed run rebuilds them on both ranks
+        damaged = root_path / "resumed" / "gen0" / "targets.npy"
+        array = np.load(damaged)
+        array[0, 0, 0] += 1
+        np.save(damaged, array)
+    dist.barrier()
     second = lineage(root_path / "resumed", train, heldout, test)
     report["resumed_from"] = len(second.result.records)
     hook_loop(second)
     report["resumed"] = {"records": second.result.records, "stop_reason": second.result.stop_reason}
     second.close()
+    rebuilt = filial.TargetStore(root_path / "resumed" / "gen0")
+    rebuilt.verify()
+    report["rebuilt_first_row"] = rebuilt.read_all()[0, 0].tolist()
 
     train, heldout, test, _ = digits(rank, world)
     managed = lineage(root_path / "managed", train, heldout, test)

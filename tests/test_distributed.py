@@ -325,11 +325,16 @@ def test_each_epoch_tells_the_sampler_its_epoch_and_shards_complement(two_ranks)
 
 @pytest.mark.slow
 def test_a_resumed_two_rank_run_equals_one_that_went_straight_through(two_ranks):
-    _, (zero, one) = two_ranks
+    """Resumed after generation 0 with that generation's targets damaged: both ranks rebuild
+    them together, and the run still equals the one that went straight through."""
+    root, (zero, one) = two_ranks
     assert zero["resumed_from"] == one["resumed_from"] == 1
     assert _without_seconds(zero["resumed"]["records"]) == _without_seconds(
         zero["straight"]["records"]
     )
+    assert zero["rebuilt_first_row"] == one["rebuilt_first_row"]
+    straight = filial.TargetStore(root / "straight" / "gen0").read_all()[0, 0].tolist()
+    assert zero["rebuilt_first_row"] == straight  # the damage is gone
 
 
 @pytest.mark.slow

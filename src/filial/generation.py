@@ -158,12 +158,10 @@ def evaluate(
     seed: int,
     fault: str | None = None,
     replay: Replay | None = None,
-    alone: bool = False,
 ) -> Predictions | None:
     """:func:`predict` over the whole dataset; under a process group each rank predicts its
-    shard and rank 0 receives the whole, checked index by index (None on the other ranks).
-    ``alone``: this process computes the whole pass by itself, process group or not."""
-    if alone or not distributed.is_distributed():
+    shard and rank 0 receives the whole, checked index by index (None on the other ranks)."""
+    if not distributed.is_distributed():
         return predict(model, loader, seed, fault=fault, replay=replay)
     views = replay.views if replay is not None else 1
     size = len(loader.dataset) * views  # type: ignore[arg-type]
@@ -201,15 +199,15 @@ def _finite_module(model: nn.Module) -> bool:
 
 
 def training_pass(
-    model: nn.Module, setup: Setup, seed: int, fault: str | None = None, alone: bool = False
+    model: nn.Module, setup: Setup, seed: int, fault: str | None = None
 ) -> tuple[Predictions, torch.Tensor] | None:
     """The teacher pass over the training set: its outputs ``(N, views, C)``, and the
     predictions of view 0 (for the training-set figures of the record). Under a process group
-    the ranks share it and only rank 0 gets the result (None elsewhere), unless ``alone``."""
+    the ranks share it and only rank 0 gets the result (None elsewhere)."""
     replay = setup.replay
     if replay is not None and not setup.write_targets:
         replay = Replay(replay.seed, 1)  # nobody reads the views: view 0 is enough
-    train = evaluate(model, setup.train_loader, seed, fault=fault, replay=replay, alone=alone)
+    train = evaluate(model, setup.train_loader, seed, fault=fault, replay=replay)
     if train is None:
         return None
     views = replay.views if replay is not None else 1

@@ -740,14 +740,20 @@ class Lineage:
                 sampler.seed = derive_seed(seed, index, 2)
 
     def _open_teacher_store(self, record: dict[str, Any]) -> TargetStore:
-        """The teacher's store, verified; under a process group rank 0 verifies it (rebuilding a
-        damaged one) while the other ranks wait, then they open the store it vouched for."""
+        """The teacher's store, verified (rebuilt from its checkpoint if damaged)."""
         if not distributed.is_distributed():
             return self._teacher_store(record)
-        store = distributed.on_rank_zero(
-            lambda: self._teacher_store(record),
-            f"checking generation {record['generation']}'s targets",
+        # Note: several processes. Rank 0 verifies the store while the others wait; a damaged
+        # one is rebuilt by all ranks together (each scores its shard, as in every teacher
+        # pass), so that no rank idles through a whole pass inside a collective's timeout; rank
+        # 0 writes it, and then the other ranks open the store it vouched for.
+        what = f"checking generation {record['generation']}'s targets"
+        store = distributed.on_rank_zero(lambda: self._checked_store(record), what)
+        (rebuild,) = distributed.broadcast_ints(
+            [int(store is None)] if distributed.is_main() else None, 1
         )
+        if rebuild:
+            store = self._rebuilt_store(record)
         if store is None:
             store = TargetStore(self.run_dir / f"gen{record['generation']}")
             if not store.exists() or store.manifest["teacher_sha256"] != record.get(
@@ -763,6 +769,15 @@ class Lineage:
 
     def _teacher_store(self, record: dict[str, Any]) -> TargetStore:
         """The teacher ``record``'s targets, verified; rebuilt from its checkpoint if damaged."""
+        store = self._checked_store(record)
+        if store is None:
+            store = self._rebuilt_store(record)
+        assert store is not None  # one process: the whole pass is here
+        return store
+
+    def _checked_store(self, record: dict[str, Any]) -> TargetStore | None:
+        """The teacher ``record``'s targets if they verify; None if they are missing or damaged
+        and can be recomputed from its checkpoint. Targets of other training data raise."""
         directory = self.run_dir / f"gen{record['generation']}"
         fresh = self._fresh_store
         if fresh is not None and fresh.directory == directory:
@@ -782,13 +797,23 @@ class Lineage:
                 exc,
                 record["generation"],
             )
+        return None
+
+    def _rebuilt_store(self, record: dict[str, Any]) -> TargetStore | None:
+        """Recompute the teacher ``record``'s targets from its checkpoint and write them; under a
+        process group every rank takes part and rank 0 writes (None on the other ranks)."""
         model = load_generation(self.model_fn, self.run_dir, record)
         seed = derive_seed(self.settings["seed"], record["generation"], 1)
-        # rank 0 alone under a process group: the other ranks wait in _open_teacher_store
-        passes = training_pass(model, self._setup, seed, alone=True)
-        assert passes is not None  # alone: the whole pass, here
-        outputs = passes[1]
-        return write_targets(self._setup, directory, outputs, record["checkpoint_sha256"])
+        passes = training_pass(model, self._setup, seed)
+        directory = self.run_dir / f"gen{record['generation']}"
+
+        def write() -> TargetStore:
+            assert passes is not None  # rank 0 (or one process) holds the whole pass
+            return write_targets(self._setup, directory, passes[1], record["checkpoint_sha256"])
+
+        return distributed.on_rank_zero(
+            write, f"writing generation {record['generation']}'s recomputed targets"
+        )
 
     def _heldout_outputs(self, generation: int) -> torch.Tensor:
         if generation not in self._heldout:
