@@ -50,10 +50,10 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from .losses import LOSS_KINDS
+from .store import STORE_DTYPES
 
 if TYPE_CHECKING:
     import torch
-from .store import STORE_DTYPES
 
 MARKER = "# filial run recipe (filial.run/1): resolved by filial run, read by filial report"
 
