@@ -151,6 +151,11 @@ class Replay:
         return [i for i, _ in pairs], [v for _, v in pairs]
 
 
+def code_count(dataset: Any, replay: Replay | None) -> int:
+    """How many (sample, view) codes a pass over ``dataset`` covers: ``len * views``."""
+    return len(dataset) * (replay.views if replay is not None else 1)
+
+
 class _Fetched:
     """A batch's samples with their dataset indices (and views), on their way to
     :class:`IndexedCollate`. ``codes`` are what the batch sampler gave."""
@@ -332,10 +337,17 @@ class EpochLoader(DataLoader):
         return super().__iter__()
 
 
+def samplers_of(loader: DataLoader) -> list[Any]:
+    """The loader's batch sampler, the sampler inside it and the loader's sampler, each once
+    (``batch_sampler`` first: a batch sampler of the user's own may take ``set_epoch``)."""
+    batch_sampler = loader.batch_sampler
+    found = (batch_sampler, getattr(batch_sampler, "sampler", None), loader.sampler)
+    return list({id(s): s for s in found if s is not None}.values())
+
+
 def epoch_sampler(loader: DataLoader) -> Any:
     """The user's batch sampler or sampler that takes ``set_epoch`` (e.g. a DistributedSampler)."""
-    batch_sampler = loader.batch_sampler
-    for candidate in (batch_sampler, getattr(batch_sampler, "sampler", None), loader.sampler):
+    for candidate in samplers_of(loader):
         if callable(getattr(candidate, "set_epoch", None)):
             return candidate
     return None
@@ -395,7 +407,7 @@ def sequential_loader(
     settings = _common_settings(loader)
     if "in_order" in settings:
         settings["in_order"] = True  # the passes fill their buffers in index order
-    count = len(loader.dataset) * (replay.views if replay is not None else 1)  # type: ignore[arg-type]
+    count = code_count(loader.dataset, replay)
     return DataLoader(
         IndexedDataset(loader.dataset, replay),
         batch_sampler=BatchSampler(

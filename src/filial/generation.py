@@ -27,7 +27,14 @@ from . import distributed
 from ._faults import armed, fault_point
 from ._io import atomic_write
 from .checkpoint import save_checkpoint, unwrap
-from .data import Replay, derive_seed, preserved_rng, sequential_loader, training_loader
+from .data import (
+    Replay,
+    code_count,
+    derive_seed,
+    preserved_rng,
+    sequential_loader,
+    training_loader,
+)
 from .losses import StudentLoss
 from .metrics import Metric
 from .store import TargetStore
@@ -102,8 +109,7 @@ def predict(
     """
     module = unwrap(model)
     device = model_device(module)
-    views = replay.views if replay is not None else 1
-    size = len(loader.dataset) * views if sampler is None else len(sampler)  # type: ignore[arg-type]
+    size = code_count(loader.dataset, replay) if sampler is None else len(sampler)
     order = None if sampler is None else torch.empty(size, dtype=torch.int64)
     outputs: torch.Tensor | None = None
     labels: torch.Tensor | None = None
@@ -163,8 +169,7 @@ def evaluate(
     shard and rank 0 receives the whole, checked index by index (None on the other ranks)."""
     if not distributed.is_distributed():
         return predict(model, loader, seed, fault=fault, replay=replay)
-    views = replay.views if replay is not None else 1
-    size = len(loader.dataset) * views  # type: ignore[arg-type]
+    size = code_count(loader.dataset, replay)
     sampler = distributed.shard_sampler(range(size))  # a share of the codes i * views + v
     part = predict(model, loader, seed, fault=fault, replay=replay, sampler=sampler)
     assert part.indices is not None  # a sampler was given

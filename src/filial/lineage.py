@@ -34,7 +34,7 @@ from tqdm.auto import tqdm
 from . import distributed
 from ._io import LockedError, RunLock, atomic_write, atomic_write_json, sweep_temporaries
 from .checkpoint import load_checkpoint
-from .data import Probe, Replay, check_loader, derive_seed, preserved_rng, probe
+from .data import Probe, Replay, check_loader, derive_seed, preserved_rng, probe, samplers_of
 from .errors import InputError
 from .generation import (
     HELDOUT_FILE,
@@ -48,7 +48,7 @@ from .generation import (
 from .losses import StudentLoss
 from .metrics import Metric, as_float_metric, default_metric, metric_name
 from .stopping import StopRule, as_count
-from .store import STORE_DTYPES, StoreError, TargetStore
+from .store import STORE_DTYPES, StoreError, TargetStore, index_dtype
 from .tb import TensorBoardLog
 
 log = logging.getLogger("filial")
@@ -290,7 +290,7 @@ class Lineage:
             )
         if top_k is not None:
             value = np.dtype(store_dtype).itemsize
-            compact = top_k * (value + (2 if self._width <= np.iinfo(np.int16).max else 4))
+            compact = top_k * (value + np.dtype(index_dtype(self._width)).itemsize)
             if compact >= self._width * value:
                 _say_once(
                     f"top_k{top_k}:{self._width}:{store_dtype}",
@@ -308,6 +308,7 @@ class Lineage:
         self.tensorboard = TensorBoardLog(tensorboard) if tensorboard and main else None
         self.rule = rule
         train_print = train_probe.fingerprint
+        replay = _replay(train_probe, views, seed) if teacher_mode == "cached" else None
         self.settings: dict[str, Any] = {
             "targets": targets,
             "temperature": float(temperature),
@@ -320,7 +321,7 @@ class Lineage:
             "top_k": top_k,
             "teacher_mode": teacher_mode,
             # Replayed targets and targets of unreplayed augmentation must not be mixed.
-            "replayed": teacher_mode == "cached" and _replay(train_probe, views, seed) is not None,
+            "replayed": replay is not None,
             "seed": seed,
             "metric": metric_name(metric),
             "model_fn": metric_name(model_fn),
@@ -345,7 +346,7 @@ class Lineage:
             seed=seed,
             top_k=top_k,
             write_targets=teacher_mode != "online",  # online students never read a cache
-            replay=_replay(train_probe, views, seed) if self.settings["replayed"] else None,
+            replay=replay,
         )
         self._records: list[dict[str, Any]] = []
         self._decision: dict[str, Any] | None = None
@@ -680,8 +681,7 @@ class Lineage:
                 "the same datasets; shard the training set with a DistributedSampler instead of "
                 "giving each rank a dataset of its own."
             )
-        batch_sampler = train_loader.batch_sampler
-        samplers = (train_loader.sampler, batch_sampler, getattr(batch_sampler, "sampler", None))
+        samplers = samplers_of(train_loader)
         if distributed.is_main() and not any(isinstance(s, DistributedSampler) for s in samplers):
             # A warning, not a refusal: a batch sampler of the user's own may shard as well.
             log.warning(
@@ -720,13 +720,8 @@ class Lineage:
         seed = self.settings["seed"]
         _seed_everything(derive_seed(seed, index))
         loader = self._setup.train_loader
-        batch_sampler = loader.batch_sampler
-        candidates = (
-            loader.generator,
-            getattr(loader.sampler, "generator", None),
-            getattr(batch_sampler, "generator", None),
-            getattr(getattr(batch_sampler, "sampler", None), "generator", None),
-        )
+        samplers = samplers_of(loader)
+        candidates = [loader.generator] + [getattr(s, "generator", None) for s in samplers]
         held = {id(g): g for g in candidates}
         for generator in held.values():
             if isinstance(generator, torch.Generator):
@@ -734,8 +729,7 @@ class Lineage:
         # Note: DistributedSampler holds no generator; it shuffles with seed + epoch. Its seed
         # is derived here per generation (the same on every rank, so the shards stay
         # complementary): generations see different orders and a resumed run repeats them.
-        samplers = (loader.sampler, batch_sampler, getattr(batch_sampler, "sampler", None))
-        for sampler in {id(s): s for s in samplers}.values():
+        for sampler in samplers:
             if isinstance(sampler, DistributedSampler):
                 sampler.seed = derive_seed(seed, index, 2)
 

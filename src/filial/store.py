@@ -37,6 +37,15 @@ STORE_DTYPES = ("float16", "float32")
 _FLOAT16_MAX = float(np.finfo(np.float16).max)
 
 
+def index_dtype(classes: int) -> type[np.signedinteger]:
+    """The class-index type of a top-k store: int16, or int32 past 32,767 classes.
+
+    >>> index_dtype(1000).__name__, index_dtype(40_000).__name__
+    ('int16', 'int32')
+    """
+    return np.int16 if classes <= np.iinfo(np.int16).max else np.int32
+
+
 class StoreError(InputError):
     """A target store is missing, incomplete, damaged, or belongs to other data."""
 
@@ -103,8 +112,7 @@ class TargetStore:
         else:
             # The k largest per row, largest first (ties broken by the lower class index).
             order = np.argsort(-outputs, axis=2, kind="stable")[:, :, :top_k]
-            index_dtype = np.int16 if classes <= np.iinfo(np.int16).max else np.int32
-            index = np.ascontiguousarray(order, dtype=index_dtype)
+            index = np.ascontiguousarray(order, dtype=index_dtype(classes))
             array = np.ascontiguousarray(np.take_along_axis(outputs, order, axis=2), dtype=dtype)
         array_path = directory / cls.ARRAY
         atomic_write(array_path, lambda handle: np.save(handle, array, allow_pickle=False))

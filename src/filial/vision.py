@@ -28,6 +28,7 @@ from torch import nn
 from torch.utils.data import DataLoader, Dataset
 
 from .errors import InputError
+from .stopping import as_count
 
 # Per-channel mean and standard deviation of the training images (pixels in [0, 1]), quoted from
 # memory of the values commonly published for these datasets, not recomputed here.
@@ -203,10 +204,11 @@ def _fake_dataset(dataset: str) -> tuple[Any, Any]:
     return train, test
 
 
-def _count(value: Any, key: str) -> int:
-    if not isinstance(value, int) or isinstance(value, bool) or value < 0:
-        raise InputError(f"data.{key} should be an integer >= 0, but got {value!r}")
-    return value
+def _count(value: Any, key: str, minimum: int = 0) -> int:
+    try:
+        return as_count(value, f"data.{key}", minimum)
+    except ValueError as exc:
+        raise InputError(str(exc)) from None
 
 
 def cifar_loaders(
@@ -240,8 +242,7 @@ def cifar_loaders(
         ("workers", workers),
     ):
         _count(value, key)
-    if _count(batch_size, "batch_size") < 1:
-        raise InputError(f"data.batch_size should be >= 1, but got {batch_size!r}")
+    _count(batch_size, "batch_size", minimum=1)
     if not 1 <= heldout_size < TRAIN_SIZE:
         raise InputError(
             f"data.heldout_size should lie in 1..{TRAIN_SIZE - 1} (it is split off the "
