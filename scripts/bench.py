@@ -48,9 +48,9 @@ from torch import nn
 from torch.utils.data import DataLoader, TensorDataset
 
 import filial
-import filial.generation
+import filial.evaluation
 from filial.demo import MLP, mail_room
-from filial.generation import predict
+from filial.evaluation import predict
 from filial.losses import StudentLoss
 from filial.store import TargetStore
 
@@ -292,7 +292,7 @@ def lineage_overhead(epochs: int, work: Path) -> dict[str, Any]:
     fit = filial.fit_epochs(
         epochs, lambda p: torch.optim.SGD(p, lr=0.05, momentum=0.9), progress=False
     )
-    original = filial.generation.predict
+    original = filial.evaluation.predict
 
     def timed_predict(model, loader, seed, fault=None, replay=None):
         start = time.perf_counter()
@@ -307,7 +307,7 @@ def lineage_overhead(epochs: int, work: Path) -> dict[str, Any]:
         spent["fit"] += time.perf_counter() - start
         return model
 
-    filial.generation.predict = timed_predict
+    filial.evaluation.predict = timed_predict
     try:
         start = time.perf_counter()
         lineage = filial.Lineage(
@@ -323,7 +323,7 @@ def lineage_overhead(epochs: int, work: Path) -> dict[str, Any]:
         lineage.run(timed_fit)
         wall = time.perf_counter() - start
     finally:
-        filial.generation.predict = original
+        filial.evaluation.predict = original
     work_s = spent["fit"] + spent["teacher"]
     return {
         "wall_s": wall,

@@ -41,14 +41,13 @@ from filial.data import (
     LoaderContractError,
     batch_size_of,
     check_loader,
-    derive_seed,
-    fingerprint,
-    probe,
     sequential_loader,
     split_pair,
     training_loader,
 )
-from filial.generation import move_to
+from filial.evaluation import move_to
+from filial.probe import fingerprint, probe
+from filial.seeding import derive_seed
 from filial.store import TargetStore
 
 FEATURES, CLASSES = 6, 3

@@ -40,10 +40,11 @@ from torch.utils.data import DataLoader, DistributedSampler
 import filial
 from filial import distributed
 from filial.checkpoint import load_checkpoint
-from filial.data import EpochLoader, Replay, derive_seed, training_loader
+from filial.data import EpochLoader, Replay, training_loader
 from filial.demo import MLP, mail_room
 from filial.distributed import CoverageError, assemble, padding_rows
-from filial.generation import predict
+from filial.evaluation import predict
+from filial.seeding import derive_seed
 
 ROOT = Path(__file__).resolve().parents[1]
 

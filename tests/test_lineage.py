@@ -13,6 +13,8 @@ from torch import nn
 from torch.utils.data import DataLoader, TensorDataset
 
 import filial
+import filial.rundir
+import filial.store
 from filial.checkpoint import load_checkpoint
 from filial.errors import InputError
 
@@ -302,33 +304,33 @@ def test_metric_results_become_floats_and_bad_ones_are_named(loaders, tmp_path):
 def test_failed_state_write_keeps_memory_and_disk_in_step(loaders, tmp_path, monkeypatch):
     lineage = _lineage(loaders, tmp_path / "run", max_generations=1)
     gen = next(iter(lineage))
-    real = filial.lineage.atomic_write_json
+    real = filial.rundir.atomic_write_json
 
     def full_disk(path, data):
         raise OSError(28, "No space left on device")
 
-    monkeypatch.setattr(filial.lineage, "atomic_write_json", full_disk)
+    monkeypatch.setattr(filial.rundir, "atomic_write_json", full_disk)
     with pytest.raises(OSError, match="(?i)no space"):
         gen.finish(gen.model)
     assert lineage.result.records == [] and not gen.finished
-    monkeypatch.setattr(filial.lineage, "atomic_write_json", real)
+    monkeypatch.setattr(filial.rundir, "atomic_write_json", real)
     gen.finish(gen.model)  # the same generation can be finished once the disk has room
     assert [r["generation"] for r in lineage.result.records] == [0]
 
 
 def test_crash_inside_finish_resumes_to_the_same_records(loaders, tmp_path, monkeypatch):
     whole = _hook(_lineage(loaders, tmp_path / "whole"))
-    real = filial.generation.TargetStore.write
+    real = filial.store.TargetStore.write
 
     def crash_in_generation_two(directory, *args, **kwargs):
         if str(directory).endswith("gen2"):
             raise KeyboardInterrupt  # as if the process stopped while writing targets
         return real(directory, *args, **kwargs)
 
-    monkeypatch.setattr(filial.generation.TargetStore, "write", crash_in_generation_two)
+    monkeypatch.setattr(filial.store.TargetStore, "write", crash_in_generation_two)
     with pytest.raises(KeyboardInterrupt):
         _hook(_lineage(loaders, tmp_path / "run"))
-    monkeypatch.setattr(filial.generation.TargetStore, "write", real)
+    monkeypatch.setattr(filial.store.TargetStore, "write", real)
     assert (tmp_path / "run" / "gen2" / "student.pt").is_file()  # written, never recorded
     resumed = _lineage(loaders, tmp_path / "run")
     assert [r["generation"] for r in resumed.result.records] == [0, 1]
@@ -371,7 +373,7 @@ def test_best_model_leaves_the_global_rng_alone(loaders, tmp_path):
 
 
 def test_diverged_retry_removes_an_earlier_attempts_targets(loaders, tmp_path, monkeypatch):
-    real = filial.lineage.atomic_write_json
+    real = filial.rundir.atomic_write_json
     calls = []
 
     def crash_on_record_of_generation_one(path, data):
@@ -380,10 +382,10 @@ def test_diverged_retry_removes_an_earlier_attempts_targets(loaders, tmp_path, m
             raise KeyboardInterrupt  # gen1's store is on disk, its record is not
         return real(path, data)
 
-    monkeypatch.setattr(filial.lineage, "atomic_write_json", crash_on_record_of_generation_one)
+    monkeypatch.setattr(filial.rundir, "atomic_write_json", crash_on_record_of_generation_one)
     with pytest.raises(KeyboardInterrupt):
         _hook(_lineage(loaders, tmp_path / "run"))
-    monkeypatch.setattr(filial.lineage, "atomic_write_json", real)
+    monkeypatch.setattr(filial.rundir, "atomic_write_json", real)
     assert (tmp_path / "run" / "gen1" / "targets.json").is_file()
     result = _hook(_lineage(loaders, tmp_path / "run"), poison=1)
     assert result.stop_reason == "diverged"

@@ -9,6 +9,8 @@ from __future__ import annotations
 import json
 import logging
 import random
+import shutil
+import subprocess
 
 import numpy as np
 import pytest
@@ -18,8 +20,9 @@ from torch import nn
 from torch.utils.data import DataLoader, Dataset
 
 import filial
-import filial.lineage
-from filial.data import Replay, probe, sequential_loader, training_loader
+import filial.probe
+from filial.data import Replay, sequential_loader, training_loader
+from filial.probe import probe
 from filial.errors import InputError
 from filial.lineage import load_generation
 
@@ -27,7 +30,7 @@ from filial.lineage import load_generation
 @pytest.fixture(autouse=True)
 def _fresh_warnings(monkeypatch):
     """Each test sees the once-per-dataset augmentation warnings anew."""
-    monkeypatch.setattr(filial.lineage, "_AUGMENTATION_WARNED", set())
+    monkeypatch.setattr(filial.probe, "_AUGMENTATION_WARNED", set())
 
 
 class Augmented(Dataset):
@@ -210,7 +213,7 @@ def test_replay_leaves_the_users_random_streams_alone(tmp_path):
     very process, the case where they could."""
     replayed, replayed_lineage = _rng_trace(tmp_path / "a", Augmented(), views=3)
     plain, plain_lineage = _rng_trace(tmp_path / "b", blobs(48, seed=1), views=1)
-    assert replayed_lineage._setup.replay is not None and plain_lineage._setup.replay is None
+    assert replayed_lineage._inputs.replay is not None and plain_lineage._inputs.replay is None
     # Generation 0 trains on the user's own augmentation, which draws from these streams (so it
     # differs); the replayed student must not.
     masks_a, rand_a, py_a, np_a = replayed[1]
@@ -223,7 +226,7 @@ def test_replay_leaves_the_users_random_streams_alone(tmp_path):
 
 def test_a_deterministic_dataset_is_not_replayed(tmp_path, caplog):
     lineage = _lineage(tmp_path / "a", blobs(48), views=1)
-    assert lineage._setup.replay is None  # no per-sample seeding on the hot path
+    assert lineage._inputs.replay is None  # no per-sample seeding on the hot path
     lineage.close()
     caplog.set_level(logging.WARNING, logger="filial")
     copies = _lineage(tmp_path / "b", blobs(48), views=2)  # allowed, but said to be waste
@@ -236,7 +239,7 @@ def test_an_augmenting_dataset_with_one_view_is_replayed_and_said_once(tmp_path,
     dataset = Augmented(n=40, seed=17)  # a dataset no other test uses: its first warning
     first = _lineage(tmp_path / "a", dataset, views=1)
     second = _lineage(tmp_path / "b", dataset, views=1)
-    assert first._setup.replay == Replay(first._setup.replay.seed, 1)
+    assert first._inputs.replay == Replay(first._inputs.replay.seed, 1)
     said = [r for r in caplog.records if "single replayed augmented view" in r.getMessage()]
     assert len(said) == 1
     first.close()
@@ -249,7 +252,7 @@ def test_views_that_no_seed_can_replay_are_refused(tmp_path, caplog):
     assert not (tmp_path / "a").exists()
     caplog.set_level(logging.WARNING, logger="filial")
     lineage = _lineage(tmp_path / "b", OwnGenerator(seed=23), views=1)
-    assert lineage._setup.replay is None
+    assert lineage._inputs.replay is None
     assert any("even under the same seeds" in r.getMessage() for r in caplog.records)
     lineage.close()
 
@@ -295,7 +298,7 @@ def test_augmentation_in_the_collate_cannot_be_replayed(tmp_path, caplog):
     lineage = filial.Lineage(
         TinyNet(), loader(), heldout, run_dir=tmp_path / "b", progress=False, tensorboard=False
     )
-    assert lineage._setup.replay is None and lineage.settings["replayed"] is False
+    assert lineage._inputs.replay is None and lineage.settings["replayed"] is False
     assert any("collate_fn draws" in r.getMessage() for r in caplog.records)
     lineage.close()
 
@@ -315,3 +318,34 @@ def test_a_run_cached_without_replay_is_not_resumed_with_it(tmp_path):
     state_path.write_text(json.dumps(state))
     with pytest.raises(InputError, match="replayed: False in the run, True now"):
         _lineage(tmp_path, Augmented(), views=1)
+
+
+JAVA_SPLITMIX = """
+import java.util.SplittableRandom;
+public class Mix {
+  public static void main(String[] a) {
+    for (long seed : new long[] {0L, 7L, 12345L}) {
+      SplittableRandom r = new SplittableRandom(seed);
+      for (int k = 0; k < 3; k++) System.out.println(Long.toUnsignedString(r.nextLong()));
+    }
+  }
+}
+"""
+
+
+@pytest.mark.slow
+@pytest.mark.skipif(shutil.which("java") is None, reason="needs a Java runtime (the reference)")
+def test_the_seed_hash_is_splitmix64_as_javas_splittable_random_computes_it(tmp_path):
+    """The replay seeds' finaliser against an outside implementation: OpenJDK's
+    java.util.SplittableRandom, whose nextLong() from seed s returns mix64(s + k * GAMMA) for
+    k = 1, 2, ... with GAMMA = 0x9E3779B97F4A7C15 (Steele, Lea & Flood 2014)."""
+    from filial.data import _mix
+
+    source = tmp_path / "Mix.java"
+    source.write_text(JAVA_SPLITMIX)
+    printed = subprocess.run(
+        ["java", str(source)], capture_output=True, text=True, check=True, timeout=120
+    ).stdout.split()
+    gamma, mask = 0x9E3779B97F4A7C15, (1 << 64) - 1
+    ours = [_mix((seed + k * gamma - gamma) & mask) for seed in (0, 7, 12345) for k in (1, 2, 3)]
+    assert [int(v) for v in printed] == ours

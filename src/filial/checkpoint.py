@@ -9,6 +9,7 @@ Wrappers are removed before saving: ``DistributedDataParallel``/``DataParallel``
 from __future__ import annotations
 
 import os
+from collections.abc import Callable
 from pathlib import Path
 
 import torch
@@ -16,6 +17,7 @@ from torch import nn
 
 from ._io import atomic_write, sha256_file
 from .errors import InputError
+from .seeding import preserved_rng
 
 
 class CheckpointError(InputError):
@@ -66,3 +68,15 @@ def load_checkpoint(
     if not isinstance(state, dict) or not all(isinstance(v, torch.Tensor) for v in state.values()):
         raise CheckpointError(f"checkpoint {path} does not hold a state_dict of tensors")
     return state
+
+
+def load_model(
+    model_fn: Callable[[], nn.Module], path: str | os.PathLike[str], sha256: str | None = None
+) -> nn.Module:
+    """A fresh ``model_fn()`` module holding the checkpoint at ``path`` (checked against its
+    recorded ``sha256``). Building the module draws initial weights: the caller's random
+    streams are kept as they were."""
+    with preserved_rng():
+        model = model_fn()
+    model.load_state_dict(load_checkpoint(path, sha256))
+    return model

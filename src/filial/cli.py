@@ -26,7 +26,6 @@ import tomllib
 import traceback
 from collections.abc import Sequence
 from dataclasses import dataclass
-from pathlib import Path
 from typing import Any
 
 from torch import nn
@@ -34,14 +33,14 @@ from torch.utils.data import DataLoader
 from tqdm.auto import tqdm
 
 from . import recipe as recipes
-from ._io import LockedError, RunLock, atomic_write, sweep_temporaries
+from ._io import LockedError, atomic_write
 from .data import check_loader
-from .errors import InputError
-from .fit import fit_epochs
+from .errors import InputError, Problems
+from .fit import EpochFit, fit_epochs
 from .lineage import Lineage
-from .losses import StudentLoss
-from .report import RECIPE_FILE, format_report, spread, summarize
-from .stopping import StopRule
+from .report import format_report, spread, summarize
+from .rundir import RECIPE_FILE, Claim, RecipeRunDirectory, claim, refuse_unusable
+from .settings import Settings
 from .tb import seeds_spread
 
 EXIT_OK, EXIT_FAILED, EXIT_USAGE, EXIT_INTERRUPTED = 0, 1, 2, 130
@@ -109,41 +108,45 @@ def plan(recipe_path: str, overrides: Sequence[str], run_dir: str | None) -> Pla
             f"model.factory {recipe['model']['factory']!r} should return a fresh nn.Module, but "
             f"returned {type(probe).__name__}"
         )
-    g = recipe["generations"]
-    try:
-        StudentLoss(g["targets"], g["temperature"], g["label_weight"])
-        if g["top_k"] and g["targets"] == "l2":
-            raise ValueError("generations.top_k goes with targets = 'ce' only")
-        StopRule(g["max"], g["patience"], g["min_gain"])
-    except ValueError as exc:
-        raise recipes.RecipeError(f"[generations]: {exc}") from exc
+    problems = Problems()
+    Settings.parse(problems, **generation_settings(recipe))
+    if len(problems):
+        found = "; ".join(str(p) for p in problems.found)
+        raise recipes.RecipeError(f"[generations]: {found}")
     recipes.training_device(recipe["training"])  # a wrong device is a recipe error, here
-    if g["views"] != 1 and g["teacher"] == "online":
-        raise recipes.RecipeError(
-            "generations.views caches several augmented views per sample, but teacher = "
-            "'online' caches none; use views = 1 with it"
-        )
     return Plan(recipe, train, heldout, test, model_fn)
 
 
-def _prepare_run_dir(recipe: recipes.Recipe, fresh: bool) -> tuple[Path, bool, RunLock]:
+def generation_settings(recipe: recipes.Recipe, seed: int = 0) -> dict[str, Any]:
+    """The recipe's ``[generations]`` as :class:`~filial.settings.Settings` keywords."""
+    g = recipe["generations"]
+    return {
+        "targets": g["targets"],
+        "temperature": g["temperature"],
+        "label_weight": g["label_weight"],
+        "max_generations": g["max"],
+        "patience": g["patience"],
+        "min_gain": g["min_gain"],
+        "views": g["views"],
+        "store_dtype": g["store_dtype"],
+        "top_k": g["top_k"] or None,
+        "teacher_mode": g["teacher"],
+        "seed": seed,
+    }
+
+
+def _prepare_run_dir(recipe: recipes.Recipe, fresh: bool) -> tuple[RecipeRunDirectory, Claim]:
     """Check and lock the run directory; nothing in it is changed here.
 
-    Returns the directory, whether this call created it, and the lock held on it. A folder that
-    is neither empty nor a filial run (its ``recipe.toml`` starts with filial's marker) is
-    refused, with or without ``--fresh``.
+    A folder that is neither empty nor a filial run (its ``recipe.toml`` starts with filial's
+    marker) is refused, with or without ``--fresh``; a run of another recipe is refused
+    without ``--fresh``.
     """
-    run_dir = Path(recipe["run"]["run_dir"])
-    saved = run_dir / RECIPE_FILE
-    if run_dir.exists() and not run_dir.is_dir():
-        raise recipes.RecipeError(f"run_dir {run_dir} exists and is not a directory")
-    used = run_dir.is_dir() and any(p.name != RunLock.NAME for p in run_dir.iterdir())
-    if used and not recipes.is_saved_recipe(saved):
-        raise recipes.RecipeError(
-            f"{run_dir} is not empty and is not a filial run directory (no {RECIPE_FILE} "
-            "written by filial run). Choose another one with --run-dir."
-        )
-    if used and not fresh:
+    run = RecipeRunDirectory(recipe["run"]["run_dir"])
+    saved = run.recipe_path
+    ours = recipes.is_saved_recipe(saved)
+    refuse_unusable(run.root, ours, f"{RECIPE_FILE} written by filial run", "--run-dir")
+    if ours and not fresh:
         try:
             old = recipes.Recipe(tomllib.loads(saved.read_text(encoding="utf-8"))).comparable()
         except (OSError, ValueError, KeyError) as exc:
@@ -151,75 +154,53 @@ def _prepare_run_dir(recipe: recipes.Recipe, fresh: bool) -> tuple[Path, bool, R
         changed = recipes.differences(old, recipe.comparable())
         if changed:
             raise recipes.RecipeError(
-                f"{run_dir} holds a run of another recipe, so it cannot be resumed:\n  "
+                f"{run.root} holds a run of another recipe, so it cannot be resumed:\n  "
                 + "\n  ".join(changed)
                 + "\nUse --fresh to start over there, or another --run-dir."
             )
-    new = not run_dir.exists()
-    run_dir.mkdir(parents=True, exist_ok=True)
-    try:
-        lock = RunLock(run_dir).acquire()
-    except LockedError:
-        if new:
-            shutil.rmtree(run_dir, ignore_errors=True)
-        raise
-    if lock.previous:
-        print(
-            f"filial: took over the lock of {run_dir} left by process "
-            f"{lock.previous.get('pid')}, which is no longer running",
-            file=sys.stderr,
-        )
-    for path in sweep_temporaries(run_dir):
-        print(f"filial: removed {path}, left by a process that died", file=sys.stderr)
-    return run_dir, new, lock
+    taken = claim(run.root)
+    for note in taken.notes:
+        print(f"filial: {note}", file=sys.stderr)
+    return run, taken
 
 
-def _start_over(run_dir: Path, seeds: Sequence[int]) -> None:
+def _start_over(run: RecipeRunDirectory, seeds: Sequence[int]) -> None:
     """``--fresh``, once every check has passed: remove the earlier run's TensorBoard runs and
     the lineages of seeds the recipe no longer has (each kept seed's lineage cleared itself)."""
-    shutil.rmtree(run_dir / "tb", ignore_errors=True)
-    for entry in run_dir.glob("seed*"):
-        stale = entry.name not in {f"seed{s}" for s in seeds}
-        if stale and entry.is_dir() and (entry / "lineage.json").is_file():
-            shutil.rmtree(entry)
+    shutil.rmtree(run.tensorboard_path, ignore_errors=True)
+    kept = {run.seed(s).root for s in seeds}
+    for folder in run.seed_folders():
+        if folder not in kept:
+            shutil.rmtree(folder)
 
 
-def _save_recipe(recipe: recipes.Recipe, run_dir: Path) -> None:
+def _save_recipe(recipe: recipes.Recipe, run: RecipeRunDirectory) -> None:
     text = recipe.to_toml()
-    atomic_write(run_dir / RECIPE_FILE, lambda handle: handle.write(text.encode("utf-8")))
+    atomic_write(run.recipe_path, lambda handle: handle.write(text.encode("utf-8")))
 
 
-def _lineage(p: Plan, run_dir: Path, seed: int, quiet: bool, fresh: bool = False) -> Lineage:
-    g = p.recipe["generations"]
+def _lineage(
+    p: Plan, run: RecipeRunDirectory, seed: int, quiet: bool, fresh: bool = False
+) -> Lineage:
     return Lineage(
         p.model_fn,
         p.train,
         p.heldout,
-        run_dir=run_dir / f"seed{seed}",
-        targets=g["targets"],
-        temperature=g["temperature"],
-        label_weight=g["label_weight"],
-        max_generations=g["max"],
-        patience=g["patience"],
-        min_gain=g["min_gain"],
-        views=g["views"],
-        store_dtype=g["store_dtype"],
-        top_k=g["top_k"] or None,
-        teacher_mode=g["teacher"],
+        run_dir=run.seed(seed).root,
         test_loader=p.test,
-        seed=seed,
         progress=not quiet,
-        tensorboard=run_dir / "tb" / f"seed{seed}",
+        tensorboard=run.seed_tensorboard(seed),
         fresh=fresh,
+        **generation_settings(p.recipe, seed),
     )
 
 
-def _train(p: Plan, run_dir: Path, lineages: list[Lineage], on_terminal: bool) -> None:
+def _train(p: Plan, run: RecipeRunDirectory, lineages: list[Lineage], on_terminal: bool) -> None:
     training = p.recipe["training"]
     optimizer = recipes.build_optimizer(training)
     device = recipes.training_device(training)
 
-    def make_fit(count: int):
+    def make_fit(count: int) -> EpochFit:
         scheduler = recipes.build_scheduler(training, count)
         return fit_epochs(count, optimizer, scheduler, progress=on_terminal, device=device)
 
@@ -253,7 +234,7 @@ def _train(p: Plan, run_dir: Path, lineages: list[Lineage], on_terminal: bool) -
             )
             means.append(mean)
             stds.append(std)
-        seeds_spread(run_dir / "tb", means, stds)
+        seeds_spread(run.tensorboard_path, means, stds)
 
 
 def _resume_command(argv: Sequence[str]) -> str:
@@ -262,40 +243,42 @@ def _resume_command(argv: Sequence[str]) -> str:
 
 
 def _run(args: argparse.Namespace, argv: Sequence[str]) -> int:
-    created: Path | None = None
-    lock: RunLock | None = None
+    taken: Claim | None = None
+    lineages: list[Lineage] = []
     on_terminal = sys.stderr.isatty()
     try:
         p = plan(args.recipe, args.set, args.run_dir)
-        run_dir, new, lock = _prepare_run_dir(p.recipe, args.fresh)
-        created = run_dir if new else None
+        run, taken = _prepare_run_dir(p.recipe, args.fresh)
         seeds = p.recipe["run"]["seeds"]
         # Each Lineage checks the data and the model before it touches its folder (and, with
         # --fresh, clears it); the rest of an earlier run goes only after all of them passed.
-        lineages = [_lineage(p, run_dir, s, quiet=on_terminal, fresh=args.fresh) for s in seeds]
+        for s in seeds:
+            lineages.append(_lineage(p, run, s, quiet=on_terminal, fresh=args.fresh))
         if args.fresh:
-            _start_over(run_dir, seeds)
-        if args.fresh or not (run_dir / RECIPE_FILE).is_file():
-            _save_recipe(p.recipe, run_dir)
+            _start_over(run, seeds)
+        if args.fresh or not run.recipe_path.is_file():
+            _save_recipe(p.recipe, run)
     except (recipes.RecipeError, InputError, LockedError, ValueError, TypeError) as exc:
-        if lock is not None:
-            lock.release()
-        if created is not None:
-            shutil.rmtree(created, ignore_errors=True)
+        for lineage in lineages:
+            lineage.close()
+        if taken is not None:
+            taken.release()
+            if taken.created:
+                shutil.rmtree(taken.directory, ignore_errors=True)
         print(f"filial: {exc}", file=sys.stderr)
         return EXIT_USAGE
     try:
-        _train(p, run_dir, lineages, on_terminal)
+        _train(p, run, lineages, on_terminal)
     except InputError as exc:  # found while running (e.g. a model whose width changes)
         print(
-            f"\nfilial: {exc}\nFinished generations are kept in {run_dir}; fix the input and "
+            f"\nfilial: {exc}\nFinished generations are kept in {run.root}; fix the input and "
             f"rerun\n  {_resume_command(argv)}",
             file=sys.stderr,
         )
         return EXIT_USAGE
     except KeyboardInterrupt:
         print(
-            f"\nfilial: interrupted. {run_dir} keeps every finished generation; resume with:\n"
+            f"\nfilial: interrupted. {run.root} keeps every finished generation; resume with:\n"
             f"  {_resume_command(argv)}",
             file=sys.stderr,
         )
@@ -304,7 +287,7 @@ def _run(args: argparse.Namespace, argv: Sequence[str]) -> int:
         traceback.print_exc(file=sys.stderr)
         print(
             f"filial: the run failed: {type(exc).__name__}: {exc}\n"
-            f"Finished generations are kept in {run_dir}; fix the cause and rerun\n"
+            f"Finished generations are kept in {run.root}; fix the cause and rerun\n"
             f"  {_resume_command(argv)}",
             file=sys.stderr,
         )
@@ -312,8 +295,8 @@ def _run(args: argparse.Namespace, argv: Sequence[str]) -> int:
     finally:
         for lineage in lineages:
             lineage.close()
-        lock.release()
-    print(format_report(summarize(run_dir)))
+        taken.release()
+    print(format_report(summarize(run.root)))
     return EXIT_OK
 
 

@@ -23,10 +23,7 @@ student epoch see the same tensors for ``(i, v)``. A batch sampler index then ca
 
 from __future__ import annotations
 
-import contextlib
-import hashlib
 import inspect
-import random
 from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -44,18 +41,10 @@ from torch.utils.data import (
 
 from .errors import InputError
 from .losses import TopKTargets
+from .seeding import derive_seed, preserved_rng, samplers_of, seed_globals
 from .store import TargetStore
 
 _LOADER_PARAMS = set(inspect.signature(DataLoader.__init__).parameters)
-
-
-def derive_seed(*parts: int) -> int:
-    """A 31-bit seed derived from integers, e.g. ``derive_seed(run_seed, generation)``.
-
-    >>> derive_seed(0, 1) == derive_seed(0, 1) != derive_seed(0, 2)
-    True
-    """
-    return int(np.random.SeedSequence([int(p) for p in parts]).generate_state(1)[0] >> 1)
 
 
 class LoaderContractError(InputError, TypeError):
@@ -111,8 +100,9 @@ _MASK64 = (1 << 64) - 1
 def _mix(z: int) -> int:
     """The SplitMix64 finaliser of ``z`` + the golden-ratio increment (64-bit).
 
-    The first two outputs of SplitMix64 started from state 0 (values of the reference
-    ``splitmix64.c`` by Vigna, from memory):
+    The first two outputs of SplitMix64 started from state 0; the values are pinned here and
+    checked against an outside implementation, OpenJDK's ``java.util.SplittableRandom`` (whose
+    ``nextLong`` is this finaliser over the same increment), in ``tests/test_views.py``:
 
     >>> hex(_mix(0)), hex(_mix(0x9E3779B97F4A7C15))
     ('0xe220a8397b1dcdaf', '0x6e789e6aa1b965f4')
@@ -222,17 +212,9 @@ class IndexedDataset(Dataset):
         samples = []
         with preserved_rng():
             for i, v in zip(samples_at, views, strict=True):
-                _seed_globals(replay.seed_of(i, v))
+                seed_globals(replay.seed_of(i, v), accelerators=False)
                 samples.append(dataset[i])
         return _Fetched(samples_at, samples, views, codes=indices)
-
-
-def _seed_globals(seed: int) -> None:
-    # The CPU generator only: torch.manual_seed also visits every accelerator's generators and
-    # costs ~0.2 ms, more than many samples' whole augmentation; datasets augment on the CPU.
-    torch.default_generator.manual_seed(seed)
-    random.seed(seed)
-    np.random.seed(seed)
 
 
 class ViewChoice:
@@ -337,14 +319,6 @@ class EpochLoader(DataLoader):
         return super().__iter__()
 
 
-def samplers_of(loader: DataLoader) -> list[Any]:
-    """The loader's batch sampler, the sampler inside it and the loader's sampler, each once
-    (``batch_sampler`` first: a batch sampler of the user's own may take ``set_epoch``)."""
-    batch_sampler = loader.batch_sampler
-    found = (batch_sampler, getattr(batch_sampler, "sampler", None), loader.sampler)
-    return list({id(s): s for s in found if s is not None}.values())
-
-
 def epoch_sampler(loader: DataLoader) -> Any:
     """The user's batch sampler or sampler that takes ``set_epoch`` (e.g. a DistributedSampler)."""
     for candidate in samplers_of(loader):
@@ -419,114 +393,3 @@ def sequential_loader(
         generator=generator,
         **settings,
     )
-
-
-@contextlib.contextmanager
-def preserved_rng() -> Iterator[None]:
-    """Run a block without moving torch's, Python's or numpy's global generators.
-
-    CUDA generators are forked too once CUDA is in use (never initialising it otherwise).
-    """
-    py_state, np_state = random.getstate(), np.random.get_state()
-    devices = list(range(torch.cuda.device_count())) if torch.cuda.is_initialized() else []
-    try:
-        with torch.random.fork_rng(devices=devices):
-            yield
-    finally:
-        random.setstate(py_state)
-        np.random.set_state(np_state)
-
-
-def _tensor_bytes(value: Any, digest: Any) -> None:
-    """Feed every tensor or array in (nested lists, tuples, dicts of) ``value`` to ``digest``."""
-    if isinstance(value, torch.Tensor):
-        digest.update(str(value.dtype).encode() + str(tuple(value.shape)).encode())
-        digest.update(value.detach().cpu().contiguous().numpy().tobytes())
-    elif isinstance(value, np.ndarray):
-        digest.update(value.dtype.str.encode() + str(value.shape).encode() + value.tobytes())
-    elif isinstance(value, (list, tuple)):
-        for item in value:
-            _tensor_bytes(item, digest)
-    elif isinstance(value, dict):
-        for key in sorted(value, key=str):
-            digest.update(str(key).encode())
-            _tensor_bytes(value[key], digest)
-    else:
-        digest.update(repr(value).encode())
-
-
-@dataclass(frozen=True)
-class Probe:
-    """What a few spread-out samples of a loader's dataset tell before any training."""
-
-    fingerprint: str
-    inputs: Any  # the probe samples' inputs and labels, collated by the user's collate_fn
-    labels: Any
-    deterministic: bool  # the same index under the same seeds gave the same inputs twice
-    varies: bool = False  # fetching drew from the global generators: random augmentation
-    collate_draws: bool = False  # the collate_fn drew from them (after any replayed fetch)
-
-    @property
-    def replayable(self) -> bool:
-        """Seeding the global generators before each fetch fixes the inputs a model sees."""
-        return self.deterministic and not self.collate_draws
-
-
-def _global_states() -> tuple[Any, ...]:
-    legacy = np.random.get_state()
-    return (torch.get_rng_state(), random.getstate(), legacy[1].copy(), legacy[2:])
-
-
-def _moved(before: tuple[Any, ...], after: tuple[Any, ...]) -> bool:
-    return not (
-        torch.equal(before[0], after[0])
-        and before[1] == after[1]
-        and np.array_equal(before[2], after[2])
-        and before[3] == after[3]
-    )
-
-
-def probe(loader: DataLoader, probes: int = 64) -> Probe:
-    """Fingerprint a loader's dataset from its length and up to ``probes`` spread-out samples.
-
-    The samples are fetched with torch's, Python's and numpy's generators seeded to 0 (inside a
-    fork, so the caller's streams do not move), which makes common random augmentation
-    repeatable. Inputs enter the fingerprint only when a second fetch gives the same bytes; a
-    dataset that still changes (its own private random state) is fingerprinted by its labels.
-    Whether fetching or collating draws from the global generators is read off their states, so
-    augmentation applied to one sample in a thousand is seen as surely as one applied to all.
-    """
-    dataset = loader.dataset
-    size = len(dataset)
-    indices = sorted({int(i) for i in np.linspace(0, size - 1, num=min(probes, size))})
-
-    def fetch(seed: int) -> tuple[Any, Any, bool, bool]:
-        _seed_globals(seed)
-        before = _global_states()
-        samples = [dataset[i] for i in indices]
-        fetched = _global_states()
-        inputs, labels = split_pair(loader.collate_fn(samples))
-        return inputs, labels, _moved(before, fetched), _moved(fetched, _global_states())
-
-    def digest_of(value: Any) -> Any:
-        digest = hashlib.sha256()
-        _tensor_bytes(value, digest)
-        return digest
-
-    with preserved_rng():
-        inputs, labels, fetch_draws, collate_draws = fetch(0)
-        again = fetch(0)[0]
-        other = fetch(1)[0]
-    first_digest = digest_of(inputs)
-    deterministic = first_digest.digest() == digest_of(again).digest()
-    varies = fetch_draws or first_digest.digest() != digest_of(other).digest()
-    digest = hashlib.sha256(f"n={size};probes={len(indices)}".encode())
-    _tensor_bytes(labels, digest)
-    if deterministic:
-        digest.update(first_digest.digest())
-    return Probe(digest.hexdigest(), inputs, labels, deterministic, varies, collate_draws)
-
-
-def fingerprint(loader: DataLoader, probes: int = 64) -> str:
-    """The :func:`probe` fingerprint of a loader's dataset."""
-    return probe(loader, probes).fingerprint

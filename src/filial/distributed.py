@@ -112,20 +112,30 @@ def on_rank_zero(work: Callable[[], T], what: str) -> T | None:
     """Run ``work`` on rank 0 alone while the other ranks wait for it; returns its result on
     rank 0 and None elsewhere. If it fails on rank 0, every other rank raises
     :class:`RankZeroFailed` naming ``what`` instead of waiting for a message that never comes."""
+    return on_rank_zero_telling(work, what, lambda _: (), 0)[0]
+
+
+def on_rank_zero_telling(
+    work: Callable[[], T], what: str, tell: Callable[[T], Sequence[int]], length: int
+) -> tuple[T | None, list[int]]:
+    """:func:`on_rank_zero`, and every rank also receives ``tell(result)`` (``length``
+    integers, e.g. a stop decision) in the same broadcast as the word that rank 0 succeeded."""
     if not is_distributed():
-        return work()
+        result = work()
+        return result, [int(v) for v in tell(result)]
     if is_main():
         try:
             result = work()
+            told = [int(v) for v in tell(result)]
         except BaseException:
-            broadcast_ints([0], 1)
+            broadcast_ints([0] * (length + 1), length + 1)
             raise
-        broadcast_ints([1], 1)
-        return result
-    (ok,) = broadcast_ints(None, 1)
+        broadcast_ints([1, *told], length + 1)
+        return result, told
+    ok, *told = broadcast_ints(None, length + 1)
     if not ok:
         raise RankZeroFailed(f"rank 0 failed while {what}; its error is in rank 0's output")
-    return None
+    return None, told
 
 
 def all_sum(values: Sequence[float | torch.Tensor]) -> list[float]:

@@ -8,7 +8,7 @@
 from __future__ import annotations
 
 from collections.abc import Callable, Iterable
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import torch
 from torch import nn
@@ -16,7 +16,10 @@ from tqdm.auto import tqdm
 
 from . import distributed
 from ._faults import armed, fault_point
-from .generation import Generation, model_device, move_to
+from .evaluation import model_device, move_to
+
+if TYPE_CHECKING:
+    from .generation import Generation
 
 OptimizerFactory = Callable[[Iterable[nn.Parameter]], torch.optim.Optimizer]
 SchedulerFactory = Callable[[torch.optim.Optimizer], Any]

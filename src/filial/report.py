@@ -18,11 +18,9 @@ from typing import Any
 import numpy as np
 import torch
 
-from .lineage import BASELINE_DIR, BASELINE_FILE, HELDOUT_LABELS_FILE, STATE_FILE
 from .metrics import default_metric
+from .rundir import RECIPE_FILE, STATE_FILE, RecipeRunDirectory, RunDirectory
 from .stopping import paired_bootstrap
-
-RECIPE_FILE = "recipe.toml"
 
 _REASONS = {
     "no-gain": (
@@ -56,16 +54,19 @@ def _read_json(path: Path) -> dict[str, Any]:
         raise ValueError(f"{path} cannot be read ({exc})") from exc
 
 
-def _gain_interval(lineage_dir: Path, records: list[dict[str, Any]], best: int | None):
+def _gain_interval(run: RunDirectory, records: list[dict[str, Any]], best: int | None):
     """Paired bootstrap of the kept generation's held-out gain over generation 0 (default
     metric only: a custom metric is not stored with the run)."""
-    labels_path = lineage_dir / HELDOUT_LABELS_FILE
-    if best is None or not labels_path.is_file():
+    if best is None or not run.heldout_labels_path.is_file():
         return None
-    labels = torch.from_numpy(np.load(labels_path, allow_pickle=False))
-    first = torch.from_numpy(np.load(lineage_dir / "gen0" / "heldout.npy", allow_pickle=False))
-    kept = torch.from_numpy(np.load(lineage_dir / f"gen{best}" / "heldout.npy", allow_pickle=False))
-    interval = paired_bootstrap(default_metric(labels), first, kept, labels)
+
+    def load(path: Path) -> torch.Tensor:
+        return torch.from_numpy(np.load(path, allow_pickle=False))
+
+    labels = load(run.heldout_labels_path)
+    interval = paired_bootstrap(
+        default_metric(labels), load(run.heldout(0)), load(run.heldout(best)), labels
+    )
     return {
         "observed": interval.observed,
         "low": interval.low,
@@ -77,24 +78,24 @@ def _gain_interval(lineage_dir: Path, records: list[dict[str, Any]], best: int |
 
 def summarize_lineage(lineage_dir: str | Path, seed: int | None = None) -> dict[str, Any]:
     """One lineage's records, decision, kept generation, gain interval and baseline."""
-    lineage_dir = Path(lineage_dir)
-    state = _read_json(lineage_dir / STATE_FILE)
+    run = RunDirectory(lineage_dir)
+    state = _read_json(run.state_path)
     records = state.get("records") or []
     decision = state.get("decision") or {}
     settings = state.get("settings") or {}
     best = decision.get("best") if records else None
     default_metric_used = settings.get("metric") == "default"
-    baseline_path = lineage_dir / BASELINE_DIR / BASELINE_FILE
+    baseline_path = run.baseline_state_path
     return {
         "seed": settings.get("seed") if seed is None else seed,
-        "lineage_dir": str(lineage_dir),
+        "lineage_dir": str(run.root),
         "targets": settings.get("targets"),
         "records": records,
         "best": best,
         "stop_reason": decision.get("reason") if decision.get("stop") else None,
         "stop_in_words": reason_in_words(decision, settings),
-        "checkpoint": str(lineage_dir / records[best]["checkpoint"]) if best is not None else None,
-        "gain": _gain_interval(lineage_dir, records, best) if default_metric_used else None,
+        "checkpoint": str(run.recorded(records[best]["checkpoint"])) if best is not None else None,
+        "gain": _gain_interval(run, records, best) if default_metric_used else None,
         "baseline": _read_json(baseline_path) if baseline_path.is_file() else None,
     }
 
@@ -109,19 +110,20 @@ def spread(values: Sequence[float]) -> tuple[float | None, float | None]:
 def summarize(run_dir: str | Path) -> dict[str, Any]:
     """Everything ``filial report`` shows, as plain data."""
     run_dir = Path(run_dir)
-    if (run_dir / RECIPE_FILE).is_file():
-        recipe = tomllib.loads((run_dir / RECIPE_FILE).read_text(encoding="utf-8"))
+    recipe_run = RecipeRunDirectory(run_dir)
+    if recipe_run.recipe_path.is_file():
+        recipe = tomllib.loads(recipe_run.recipe_path.read_text(encoding="utf-8"))
         seeds = recipe["run"]["seeds"]
         lineages = [
-            summarize_lineage(run_dir / f"seed{s}", s)
+            summarize_lineage(recipe_run.seed(s).root, s)
             for s in seeds
-            if (run_dir / f"seed{s}" / STATE_FILE).is_file()
+            if recipe_run.seed(s).is_run
         ]
-        tensorboard = run_dir / "tb"
-    elif (run_dir / STATE_FILE).is_file():
+        tensorboard = recipe_run.tensorboard_path
+    elif RunDirectory(run_dir).is_run:
         recipe = None
         lineages = [summarize_lineage(run_dir)]
-        tensorboard = run_dir / "tb"
+        tensorboard = RunDirectory(run_dir).tensorboard_path
     else:
         raise ValueError(
             f"{run_dir} is not a filial run directory (no {RECIPE_FILE} and no {STATE_FILE})"

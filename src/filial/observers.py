@@ -1,0 +1,171 @@
+"""What is printed or logged while a lineage runs, and where: observers of its progress.
+
+A lineage tells its observers what happens (a run resumed, a generation started, an epoch or a
+generation ended, a baseline finished, the lineage closed) and never prints itself. Two ship
+with filial: :class:`ConsoleProgress` (one line per finished generation on stderr) and
+:class:`TensorBoardRuns` (the TensorBoard runs of :mod:`filial.tb`, derived from the records). A
+new view of a run (the spectral view, say) is one more :class:`Observer`.
+
+Observers see records after they are on disk, so what they show always matches
+``lineage.json``; they run on rank 0 only under a process group.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import sys
+from collections.abc import Sequence
+from pathlib import Path
+from typing import Any
+
+from tqdm.auto import tqdm
+
+from .records import BaselineRecord, DecisionState, EpochEntry, GenerationRecord
+from .stopping import StopRule
+from .tb import TensorBoardLog
+
+
+class Observer:
+    """The calls a lineage makes to its observers (each one a no-op here)."""
+
+    def resumed(self, run_dir: Path, records: Sequence[GenerationRecord]) -> None:
+        """An existing run directory is resumed after its last finished generation."""
+
+    def generation_started(self, index: int, teacher: int | None) -> None:
+        """Generation ``index`` is handed out (``teacher``: its teacher's index)."""
+
+    def epoch_ended(self, index: int, entry: EpochEntry) -> None:
+        """``gen.log_epoch`` recorded an epoch of generation ``index``."""
+
+    def generation_ended(
+        self, record: GenerationRecord, records: Sequence[GenerationRecord], decision: DecisionState
+    ) -> None:
+        """``record`` is written (``records`` holds every finished one, ``record`` last)."""
+
+    def baseline_ended(self, record: BaselineRecord, records: Sequence[GenerationRecord]) -> None:
+        """A baseline trained on the labels finished."""
+
+    def close(self) -> None:
+        """The lineage is closed; release files."""
+
+
+class Observers(Observer):
+    """Several observers, told in order."""
+
+    def __init__(self, observers: Sequence[Observer] = ()) -> None:
+        self.observers = list(observers)
+
+    def resumed(self, run_dir: Path, records: Sequence[GenerationRecord]) -> None:
+        for observer in self.observers:
+            observer.resumed(run_dir, records)
+
+    def generation_started(self, index: int, teacher: int | None) -> None:
+        for observer in self.observers:
+            observer.generation_started(index, teacher)
+
+    def epoch_ended(self, index: int, entry: EpochEntry) -> None:
+        for observer in self.observers:
+            observer.epoch_ended(index, entry)
+
+    def generation_ended(
+        self, record: GenerationRecord, records: Sequence[GenerationRecord], decision: DecisionState
+    ) -> None:
+        for observer in self.observers:
+            observer.generation_ended(record, records, decision)
+
+    def baseline_ended(self, record: BaselineRecord, records: Sequence[GenerationRecord]) -> None:
+        for observer in self.observers:
+            observer.baseline_ended(record, records)
+
+    def close(self) -> None:
+        for observer in self.observers:
+            observer.close()
+
+
+def figure(value: Any) -> str:
+    """A metric for a line of text: four decimals, '-' when absent."""
+    if value is None:
+        return "-"
+    if isinstance(value, float) and not math.isfinite(value):
+        return str(value)
+    return f"{value:.4f}"
+
+
+class ConsoleProgress(Observer):
+    """One line per finished generation on stderr, through tqdm so open bars survive."""
+
+    def say(self, line: str) -> None:
+        tqdm.write(f"filial: {line}", file=sys.stderr)
+
+    def resumed(self, run_dir: Path, records: Sequence[GenerationRecord]) -> None:
+        if records:
+            self.say(f"resuming {run_dir} after generation {records[-1]['generation']}")
+
+    def generation_ended(
+        self, record: GenerationRecord, records: Sequence[GenerationRecord], decision: DecisionState
+    ) -> None:
+        stop = (
+            f"; stop ({decision['reason']}), best generation {decision['best']}"
+            if decision["stop"]
+            else ""
+        )
+        self.say(
+            f"generation {record['generation']}: held-out {figure(record['heldout'])}, train vs "
+            f"labels {figure(record['train'])}, ensemble {figure(record['ensemble'])}, "
+            f"{record['seconds']:.1f} s{stop}"
+        )
+
+    def baseline_ended(self, record: BaselineRecord, records: Sequence[GenerationRecord]) -> None:
+        self.say(
+            f"matched baseline ({record['epochs_matched']} epochs on the labels): held-out "
+            f"{figure(record['heldout'])}, {record['seconds']:.1f} s"
+        )
+
+
+# The settings shown as hparams columns, one row per lineage.
+_HPARAMS = ("seed", "targets", "temperature", "label_weight", "max_generations", "patience")
+
+
+class TensorBoardRuns(Observer):
+    """One lineage's TensorBoard runs under ``folder`` (see :mod:`filial.tb`)."""
+
+    def __init__(self, folder: str | os.PathLike[str], settings: dict[str, Any]) -> None:
+        self.log = TensorBoardLog(folder)
+        self.settings = {key: settings[key] for key in _HPARAMS}
+
+    def generation_ended(
+        self, record: GenerationRecord, records: Sequence[GenerationRecord], decision: DecisionState
+    ) -> None:
+        self.log.generation(record, records[0])
+        if decision["stop"]:
+            self.log.session(self.settings, session_metrics(records))
+            self.log.close()
+
+    def baseline_ended(self, record: BaselineRecord, records: Sequence[GenerationRecord]) -> None:
+        self.log.baseline(record, [r["generation"] for r in records])
+        self.log.close()
+
+    def close(self) -> None:
+        self.log.close()
+
+
+def session_metrics(records: Sequence[GenerationRecord]) -> dict[str, float]:
+    """The hparams-table metrics of a lineage: generation 0 against the kept generation."""
+    best = StopRule.best(records)
+    if best is None:
+        return {}
+    kept, first = records[best], records[0]
+    metrics: dict[str, float | None] = {
+        "best_generation": float(best),
+        "generations": float(len(records) - 1),
+        "heldout_best": kept["heldout"],
+        "heldout_generation_0": first["heldout"],
+        "heldout_gain": kept["heldout"] - first["heldout"]
+        if first["heldout"] is not None and kept["heldout"] is not None
+        else None,
+    }
+    if kept.get("test") is not None and first.get("test") is not None:
+        metrics["test_best"] = kept["test"]
+        metrics["test_gain"] = kept["test"] - first["test"]  # type: ignore[operator]
+    return {k: v for k, v in metrics.items() if v is not None}

@@ -1,0 +1,238 @@
+"""Where a run is written: the file layout, the lock, ``lineage.json``, ``fresh``.
+
+Two kinds of run directory, each known by the file that makes it one of filial's:
+
+A lineage's (:class:`RunDirectory`, written by :class:`~filial.Lineage`)::
+
+    RUN/lineage.json          settings, one record per finished generation, the decision
+    RUN/heldout_labels.npy    held-out labels (the report's bootstrap reads them)
+    RUN/genG/student.pt       generation G's weights-only state_dict
+    RUN/genG/heldout.npy      its held-out outputs
+    RUN/genG/targets.*        its outputs on the training set (see filial.store)
+    RUN/baseline/             the matched baseline: baseline.json, gen0/
+    RUN/tb/                   TensorBoard runs
+    RUN/.lock                 who holds the directory now
+
+A recipe's (:class:`RecipeRunDirectory`, written by ``filial run``): ``RUN/recipe.toml`` (the
+resolved recipe, marked as filial's), one lineage per seed in ``RUN/seedS/``, TensorBoard runs
+in ``RUN/tb/``.
+
+Everything here that changes a file goes through :mod:`filial._io` (atomic writes). Nothing here
+knows about models or loops; other rooms ask this one for paths.
+"""
+
+from __future__ import annotations
+
+import json
+import re
+import shutil
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from ._io import LockedError, RunLock, atomic_write_json, sweep_temporaries
+from .errors import InputError
+from .records import DecisionState, GenerationRecord
+
+STATE_FILE = "lineage.json"
+STATE_FORMAT = "filial.lineage/1"
+HELDOUT_LABELS_FILE = "heldout_labels.npy"
+CHECKPOINT_FILE = "student.pt"
+HELDOUT_FILE = "heldout.npy"
+BASELINE_DIR = "baseline"
+BASELINE_FILE = "baseline.json"
+TENSORBOARD_DIR = "tb"
+RECIPE_FILE = "recipe.toml"
+# What a lineage writes in its run directory, and so all that fresh=True deletes.
+_WRITTEN_BY_A_LINEAGE = re.compile(r"lineage\.json|heldout_labels\.npy|gen\d+|baseline|tb")
+
+
+def generation_name(generation: int) -> str:
+    """The folder of a generation inside a lineage's run directory.
+
+    >>> generation_name(3)
+    'gen3'
+    """
+    return f"gen{int(generation)}"
+
+
+def seed_name(seed: int) -> str:
+    """The folder of one seed's lineage inside a recipe's run directory."""
+    return f"seed{int(seed)}"
+
+
+def foreign_entries(directory: Path) -> list[Path]:
+    """Entries of ``directory`` other than its lock file."""
+    return [p for p in directory.iterdir() if p.name != RunLock.NAME]
+
+
+def refuse_unusable(directory: Path, is_ours: bool, identity: str, choose: str) -> None:
+    """Refuse a path that is a file, or a folder that holds other things than a filial run
+    (``is_ours`` False: no ``identity`` file of filial's there). ``choose`` says how to pick
+    another (``run_dir=...``, ``--run-dir``)."""
+    if directory.exists() and not directory.is_dir():
+        raise InputError(f"run_dir {directory} exists and is not a directory")
+    if directory.is_dir() and not is_ours and foreign_entries(directory):
+        raise InputError(
+            f"{directory} is not empty and is not a filial run directory (no {identity}); "
+            f"filial will not write into it. Choose another one with {choose}."
+        )
+
+
+@dataclass
+class Claim:
+    """A run directory locked by this process, and what was found on the way in."""
+
+    directory: Path
+    lock: RunLock
+    created: bool  # this claim made the folder (so a refusal may remove it again)
+    notes: list[str] = field(default_factory=list)  # for the caller to tell the user
+
+    def release(self) -> None:
+        self.lock.release()
+
+
+def claim(directory: Path) -> Claim:
+    """Make ``directory`` if needed, lock it (:class:`~filial._io.LockedError` if a live
+    process holds it) and sweep the temporaries of processes that died there."""
+    created = not directory.exists()
+    directory.mkdir(parents=True, exist_ok=True)
+    try:
+        lock = RunLock(directory).acquire()
+    except LockedError:
+        if created:
+            shutil.rmtree(directory, ignore_errors=True)
+        raise
+    notes = []
+    if lock.previous:
+        notes.append(
+            f"took over the lock of {directory} left by process {lock.previous.get('pid')}, "
+            "which is no longer running"
+        )
+    for path in sweep_temporaries(directory):
+        notes.append(f"removed {path}, a temporary file left by a process that died")
+    return Claim(directory, lock, created, notes)
+
+
+class RunDirectory:
+    """One lineage's run directory: its paths and its state file."""
+
+    def __init__(self, root: str | Path) -> None:
+        self.root = Path(root)
+
+    def __repr__(self) -> str:
+        return f"RunDirectory({str(self.root)!r})"
+
+    # -- paths -------------------------------------------------------------------------------
+
+    @property
+    def state_path(self) -> Path:
+        return self.root / STATE_FILE
+
+    @property
+    def heldout_labels_path(self) -> Path:
+        return self.root / HELDOUT_LABELS_FILE
+
+    @property
+    def tensorboard_path(self) -> Path:
+        return self.root / TENSORBOARD_DIR
+
+    @property
+    def baseline_path(self) -> Path:
+        return self.root / BASELINE_DIR
+
+    @property
+    def baseline_state_path(self) -> Path:
+        return self.baseline_path / BASELINE_FILE
+
+    def generation(self, generation: int) -> Path:
+        return self.root / generation_name(generation)
+
+    def checkpoint_entry(self, generation: int) -> str:
+        """A generation's checkpoint as its record names it (relative to the run directory)."""
+        return f"{generation_name(generation)}/{CHECKPOINT_FILE}"
+
+    def checkpoint(self, generation: int) -> Path:
+        return self.root / self.checkpoint_entry(generation)
+
+    def heldout(self, generation: int) -> Path:
+        return self.generation(generation) / HELDOUT_FILE
+
+    def recorded(self, entry: str) -> Path:
+        """A path a record names (relative to the run directory)."""
+        return self.root / entry
+
+    # -- the state file ----------------------------------------------------------------------
+
+    @property
+    def is_run(self) -> bool:
+        return self.state_path.is_file()
+
+    def refuse_unusable(self) -> None:
+        refuse_unusable(self.root, self.is_run, STATE_FILE, "another run_dir")
+
+    def read_state(self) -> dict[str, Any]:
+        """``lineage.json``: ``format``, ``settings``, ``records``, ``decision``."""
+        try:
+            state = json.loads(self.state_path.read_text(encoding="utf-8"))
+        except (OSError, ValueError) as exc:
+            raise ValueError(f"{self.state_path} cannot be read ({exc})") from exc
+        if not isinstance(state, dict) or state.get("format") != STATE_FORMAT:
+            raise ValueError(f"{self.state_path} is not a filial lineage file ({STATE_FORMAT})")
+        return state
+
+    def write_state(
+        self,
+        settings: dict[str, Any],
+        records: list[GenerationRecord],
+        decision: DecisionState | None,
+    ) -> None:
+        """Rewrite ``lineage.json`` atomically (the old file stays whole if this fails)."""
+        atomic_write_json(
+            self.state_path,
+            {
+                "format": STATE_FORMAT,
+                "settings": settings,
+                "records": records,
+                "decision": decision,
+            },
+        )
+
+    def clear(self) -> list[Path]:
+        """Delete an earlier lineage's files here (``fresh``): only what a lineage writes, never
+        the lock or anything else. Returns what was removed."""
+        removed = []
+        for entry in self.root.iterdir():
+            if _WRITTEN_BY_A_LINEAGE.fullmatch(entry.name):
+                shutil.rmtree(entry) if entry.is_dir() else entry.unlink()
+                removed.append(entry)
+        return removed
+
+
+class RecipeRunDirectory:
+    """The run directory of ``filial run``: the saved recipe and one lineage per seed."""
+
+    def __init__(self, root: str | Path) -> None:
+        self.root = Path(root)
+
+    @property
+    def recipe_path(self) -> Path:
+        return self.root / RECIPE_FILE
+
+    @property
+    def tensorboard_path(self) -> Path:
+        return self.root / TENSORBOARD_DIR
+
+    def seed(self, seed: int) -> RunDirectory:
+        return RunDirectory(self.root / seed_name(seed))
+
+    def seed_tensorboard(self, seed: int) -> Path:
+        return self.tensorboard_path / seed_name(seed)
+
+    def seed_folders(self) -> list[Path]:
+        """The seed folders that hold a lineage."""
+        return [
+            entry
+            for entry in sorted(self.root.glob("seed*"))
+            if entry.is_dir() and (entry / STATE_FILE).is_file()
+        ]
