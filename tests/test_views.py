@@ -22,9 +22,9 @@ from torch.utils.data import DataLoader, Dataset
 import filial
 import filial.probe
 from filial.data import Replay, sequential_loader, training_loader
-from filial.probe import probe
 from filial.errors import InputError
 from filial.lineage import load_generation
+from filial.probe import probe
 
 
 @pytest.fixture(autouse=True)
