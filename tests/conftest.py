@@ -45,6 +45,8 @@ def loaders():
 
 
 @pytest.fixture(autouse=True)
-def _quiet_filial_logs(caplog):
+def _capture_filial_logs(caplog):
+    """Capture filial's log records from INFO up in every test (``caplog.text`` holds them), so
+    a test can assert on a warning, and pytest shows them only for a test that fails."""
     caplog.set_level(logging.INFO, logger="filial")
     yield

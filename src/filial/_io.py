@@ -42,7 +42,7 @@ def _fsync_dir(directory: Path) -> None:
         os.close(fd)
 
 
-def atomic_write(path: str | os.PathLike[str], write: Callable[[IO[bytes]], None]) -> Path:
+def atomic_write(path: str | os.PathLike[str], write: Callable[[IO[bytes]], object]) -> Path:
     """Write a file through ``write(handle)`` so that it appears whole or not at all."""
     path = Path(path)
     tmp = _temp_name(path)
@@ -140,7 +140,7 @@ class RunLock:
         try:
             import fcntl
         except ImportError:  # pragma: no cover - Windows has no flock: the pid check must do
-            if holder and _alive(int(holder["pid"])) and holder["pid"] != os.getpid():
+            if holder and _alive(int(str(holder["pid"]))) and holder["pid"] != os.getpid():
                 os.close(fd)
                 raise LockedError(self.path.parent, holder) from None
         else:
@@ -194,7 +194,8 @@ class LockedError(RuntimeError):
     def __init__(self, directory: Path, holder: dict[str, object] | None) -> None:
         who = "another process"
         if holder:
-            started = time.strftime("%Y-%m-%d %H:%M:%S", time.localtime(float(holder["started"])))
+            since = time.localtime(float(str(holder["started"])))
+            started = time.strftime("%Y-%m-%d %H:%M:%S", since)
             who = f"process {holder['pid']} on {holder.get('host', '?')} (since {started})"
         super().__init__(
             f"{directory} is in use by {who}; wait for it to finish or stop it, or use another "

@@ -53,7 +53,7 @@ def train_matched_baseline(
     if state_path.is_file():
         stored = json.loads(state_path.read_text(encoding="utf-8"))
         if stored.get("epochs_matched") == epochs:
-            return stored  # type: ignore[no-any-return]
+            return stored
 
     def conclude(gen: Generation, write: Callable[[], Measured] | None) -> GenerationRecord:
         def save() -> BaselineRecord:
@@ -65,12 +65,12 @@ def train_matched_baseline(
                 checkpoint=f"{BASELINE_DIR}/{record['checkpoint']}",
             )
             atomic_write_json(state_path, record)
-            return record  # type: ignore[no-any-return]
+            return record
 
         saved = distributed.on_rank_zero(save, "writing the matched baseline")
         if saved is None:  # a rank other than 0: rank 0 has written the baseline's record
             saved = json.loads(state_path.read_text(encoding="utf-8"))
-        return saved  # type: ignore[return-value]
+        return saved
 
     seed_generation(inputs.seed, 0, inputs.train_loader)
     baseline_inputs = dataclasses.replace(
@@ -80,4 +80,4 @@ def train_matched_baseline(
     fitted = make_fit(epochs)(gen)
     record: Any = gen.finish(fitted if fitted is not None else gen.model)
     observer.baseline_ended(record, records)
-    return record  # type: ignore[no-any-return]
+    return record

@@ -227,7 +227,8 @@ def _train(p: Plan, run: RecipeRunDirectory, lineages: list[Lineage], on_termina
             lineage.matched_baseline(make_fit)
     if len(lineages) > 1:
         depth = max(len(x.result.records) for x in lineages)
-        means, stds = [], []
+        means: list[float | None] = []
+        stds: list[float | None] = []
         for g in range(depth):
             mean, std = spread(
                 [x.result.records[g]["heldout"] for x in lineages if len(x.result.records) > g]
@@ -242,44 +243,57 @@ def _resume_command(argv: Sequence[str]) -> str:
     return "filial " + shlex.join(kept)
 
 
-def _run(args: argparse.Namespace, argv: Sequence[str]) -> int:
+def _open(
+    args: argparse.Namespace, quiet: bool
+) -> tuple[Plan, RecipeRunDirectory, Claim, list[Lineage]]:
+    """Check the recipe, lock the run directory, build one Lineage per seed (each checks its
+    data and model before it touches its folder and, with ``--fresh``, clears it); then remove
+    the rest of an earlier run and save the recipe. On a refusal nothing is left behind: the
+    locks are released and a run directory made here is removed."""
     taken: Claim | None = None
     lineages: list[Lineage] = []
-    on_terminal = sys.stderr.isatty()
     try:
         p = plan(args.recipe, args.set, args.run_dir)
         run, taken = _prepare_run_dir(p.recipe, args.fresh)
         seeds = p.recipe["run"]["seeds"]
-        # Each Lineage checks the data and the model before it touches its folder (and, with
-        # --fresh, clears it); the rest of an earlier run goes only after all of them passed.
         for s in seeds:
-            lineages.append(_lineage(p, run, s, quiet=on_terminal, fresh=args.fresh))
+            lineages.append(_lineage(p, run, s, quiet=quiet, fresh=args.fresh))
         if args.fresh:
             _start_over(run, seeds)
         if args.fresh or not run.recipe_path.is_file():
             _save_recipe(p.recipe, run)
-    except (recipes.RecipeError, InputError, LockedError, ValueError, TypeError) as exc:
+    except BaseException:
         for lineage in lineages:
             lineage.close()
         if taken is not None:
             taken.release()
             if taken.created:
                 shutil.rmtree(taken.directory, ignore_errors=True)
+        raise
+    return p, run, taken, lineages
+
+
+def _run(args: argparse.Namespace, argv: Sequence[str]) -> int:
+    on_terminal = sys.stderr.isatty()
+    try:
+        p, run, taken, lineages = _open(args, quiet=on_terminal)
+    except (recipes.RecipeError, InputError, LockedError, ValueError, TypeError) as exc:
         print(f"filial: {exc}", file=sys.stderr)
         return EXIT_USAGE
+    resume = _resume_command(argv)
     try:
         _train(p, run, lineages, on_terminal)
     except InputError as exc:  # found while running (e.g. a model whose width changes)
         print(
             f"\nfilial: {exc}\nFinished generations are kept in {run.root}; fix the input and "
-            f"rerun\n  {_resume_command(argv)}",
+            f"rerun\n  {resume}",
             file=sys.stderr,
         )
         return EXIT_USAGE
     except KeyboardInterrupt:
         print(
             f"\nfilial: interrupted. {run.root} keeps every finished generation; resume with:\n"
-            f"  {_resume_command(argv)}",
+            f"  {resume}",
             file=sys.stderr,
         )
         return EXIT_INTERRUPTED
@@ -287,8 +301,7 @@ def _run(args: argparse.Namespace, argv: Sequence[str]) -> int:
         traceback.print_exc(file=sys.stderr)
         print(
             f"filial: the run failed: {type(exc).__name__}: {exc}\n"
-            f"Finished generations are kept in {run.root}; fix the cause and rerun\n"
-            f"  {_resume_command(argv)}",
+            f"Finished generations are kept in {run.root}; fix the cause and rerun\n  {resume}",
             file=sys.stderr,
         )
         return EXIT_FAILED

@@ -75,7 +75,7 @@ def check_loader(loader: Any, role: str) -> DataLoader:
             "of samples. Pass batch_size=... or a batch_sampler."
         )
     try:
-        size = len(loader.dataset)
+        size = len(loader.dataset)  # type: ignore[arg-type]
     except TypeError as exc:
         raise LoaderContractError(f"{role}'s dataset has no __len__; filial needs one") from exc
     if size == 0:
@@ -191,7 +191,7 @@ class IndexedDataset(Dataset):
         delattr(self._filial_wrapped, name)
 
     def __len__(self) -> int:
-        return len(self._filial_wrapped)  # type: ignore[arg-type]
+        return len(self._filial_wrapped)
 
     def __getitem__(self, index: int) -> Any:
         return self._filial_wrapped[index]
@@ -263,7 +263,7 @@ class IndexedCollate:
         self.store = store
         self.keep_indices = keep_indices
 
-    def __call__(self, fetched: _Fetched) -> tuple[Any, Any, Any]:
+    def __call__(self, fetched: Any) -> tuple[Any, Any, Any]:
         if not isinstance(fetched, _Fetched):  # a sampler bypassed __getitems__
             raise LoaderContractError(
                 "the wrapped dataset was indexed one sample at a time; filial needs automatic "

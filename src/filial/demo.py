@@ -66,7 +66,9 @@ class MailRoom:
     clean_train_labels: torch.Tensor
     flipped: torch.Tensor
 
-    def loaders(self, batch_size: int = 64, seed: int = 0) -> tuple[DataLoader, ...]:
+    def loaders(
+        self, batch_size: int = 64, seed: int = 0
+    ) -> tuple[DataLoader, DataLoader, DataLoader]:
         """Shuffled training loader (seeded generator), held-out and test loaders."""
         generator = torch.Generator().manual_seed(seed)
         return (

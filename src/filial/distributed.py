@@ -366,9 +366,10 @@ def gather_indexed(
     assembled: list[torch.Tensor] | None = None
     if received is not None:
         try:
+            parts_by_value = [parts for parts in received_values if parts is not None]
             assembled = assemble(
                 [r[:n] for r, n in zip(received, lengths, strict=True)],
-                [[p[:n] for p, n in zip(parts, lengths, strict=True)] for parts in received_values],
+                [[p[:n] for p, n in zip(parts, lengths, strict=True)] for parts in parts_by_value],
                 size,
             )
         except CoverageError as exc:

@@ -11,7 +11,7 @@ the teacher.
 from __future__ import annotations
 
 import contextlib
-from collections.abc import Iterator
+from collections.abc import Generator
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -51,10 +51,11 @@ def move_to(value: Any, device: torch.device) -> Any:
 
 
 def model_device(model: nn.Module) -> torch.device:
-    for tensor in model.parameters():
-        return tensor.device
-    for tensor in model.buffers():
-        return tensor.device
+    """Where the model's first parameter (or buffer) is; the CPU for a module without any."""
+    for parameter in model.parameters():
+        return parameter.device
+    for buffer in model.buffers():
+        return buffer.device
     return torch.device("cpu")
 
 
@@ -65,7 +66,7 @@ def scored_batches(
     fault: str | None = None,
     replay: Replay | None = None,
     sampler: DistributedSampler | None = None,
-) -> Iterator[tuple[list[int], torch.Tensor, torch.Tensor]]:
+) -> Generator[tuple[list[int], torch.Tensor, torch.Tensor], None, None]:
     """``(codes, outputs, labels)`` batch by batch, ``model`` in eval mode (restored afterwards)
     over ``loader``'s whole dataset in code order (or ``sampler``'s shard of the codes).
 

@@ -104,10 +104,11 @@ class EpochFit:
                 samples += len(labels)
             if scheduler is not None:
                 scheduler.step()
+            sums = [float(total), float(hits), batches, samples]
             if distributed.is_distributed():
-                total, hits, batches, samples = distributed.all_sum([total, hits, batches, samples])
-            mean = float(total) / max(batches, 1)
-            running = float(hits) / max(samples, 1)
+                sums = distributed.all_sum([total, hits, batches, samples])
+            mean = sums[0] / max(sums[2], 1)
+            running = sums[1] / max(sums[3], 1)
             name = "running_accuracy" if classify else "running_neg_mse"
             gen.log_epoch(epoch, loss=mean, **{name: running})
             bar.set_postfix(loss=f"{mean:.4f}", refresh=False)

@@ -15,6 +15,7 @@ generation without one. The other rooms: :mod:`filial.settings` (which settings 
 
 from __future__ import annotations
 
+import functools
 import json
 import logging
 from collections.abc import Callable, Iterator
@@ -40,9 +41,9 @@ from .models import ModelChecks
 from .observers import ConsoleProgress, Observer, Observers, TensorBoardRuns
 from .probe import Probe, check_augmentation, probe, replay_for, say_once, warn_changing_heldout
 from .records import BaselineRecord, DecisionState, GenerationRecord
-from .rundir import Claim, RunDirectory, claim
+from .rundir import LineageState, RunDirectory
 from .seeding import samplers_of, seed_generation
-from .settings import DataFacts, Settings, differences, saved_settings
+from .settings import DataFacts, Settings, saved_settings
 from .stopping import StopRule
 from .store import TargetStore, index_dtype
 from .teacher import StoreSpec, TeacherStores
@@ -143,6 +144,7 @@ class Lineage:
         progress: bool = True,
         tensorboard: bool | str | Path = True,
     ) -> None:
+        # Long only for its arguments: each is checked elsewhere, and the rooms are built here.
         settings, train, heldout = _checked_arguments(
             model_fn,
             (train_loader, heldout_loader, test_loader),
@@ -169,19 +171,10 @@ class Lineage:
         self._run = RunDirectory(self.run_dir)
         self.rule: StopRule = settings.rule()
         replay = replay_for(train, settings.views, settings.seed) if not _online(settings) else None
-        self.settings: dict[str, Any] = saved_settings(
-            settings,
-            DataFacts(
-                replayed=replay is not None,
-                metric=metric_name(metric),
-                model_fn=metric_name(model_fn),  # type: ignore[arg-type]
-                train_size=len(train_loader.dataset),  # type: ignore[arg-type]
-                heldout_size=len(heldout_loader.dataset),  # type: ignore[arg-type]
-                test_size=None if test_loader is None else len(test_loader.dataset),  # type: ignore[arg-type]
-                train_fingerprint=train.fingerprint,
-                heldout_fingerprint=heldout.fingerprint,
-            ),
+        facts = DataFacts.of(
+            (train_loader, heldout_loader, test_loader), (train, heldout), replay, metric, model_fn
         )
+        self.settings: dict[str, Any] = saved_settings(settings, facts)
         metric_fn = metric or default_metric(torch.as_tensor(train.labels))
         spec = StoreSpec(settings.store_dtype, settings.views, settings.top_k, train.fingerprint)
         self._inputs = GenerationInputs(
@@ -201,12 +194,12 @@ class Lineage:
         )
         self._heldout = HeldoutHistory(self._run.heldout, settings.targets, self._inputs.metric)
         self._observers = Observers(self._observers_for(progress, tensorboard))
-        self._records: list[GenerationRecord] = []
-        self._decision: DecisionState | None = None
-        self._claim: Claim | None = None
+        self._state = LineageState(self._run, self.settings)
         if distributed.is_distributed():
             self._check_ranks(train_loader)
-        self._open_run_dir(fresh)
+        self._state.open(fresh)
+        if self._state.resumed:
+            self._observers.resumed(self._run.root, self._state.records)
 
     def _observers_for(self, progress: bool, tensorboard: bool | str | Path) -> list[Observer]:
         """TensorBoard runs and progress lines, on rank 0 only under a process group."""
@@ -226,86 +219,11 @@ class Lineage:
     def state_path(self) -> Path:
         return self._run.state_path
 
-    def _open_run_dir(self, fresh: bool) -> None:
-        run = self._run
-        run.refuse_unusable()
-        is_run = run.is_run
-        if is_run and not fresh:
-            self._refuse_other_settings(run.read_state())  # before touching anything
-        if not distributed.is_distributed():
-            self._take_run_dir(fresh, is_run)
-            return
-        # Note: several processes. Every rank has made the read-only checks above, so bad
-        # settings fail on all of them; once all have looked, rank 0 alone takes the lock and
-        # resumes or starts the run, and the other ranks then read the state it left.
-        distributed.barrier()
-        distributed.on_rank_zero(
-            lambda: self._take_run_dir(fresh, is_run), f"opening the run directory {run.root}"
-        )
-        if not distributed.is_main():
-            if not run.is_run:
-                raise RuntimeError(
-                    f"rank {distributed.rank()} finds no {run.state_path}, which rank 0 has "
-                    "written: every rank must see the same run directory (one machine, or a "
-                    "file system shared by the machines)"
-                )
-            state = run.read_state()
-            self._records, self._decision = list(state["records"]), state.get("decision")
-
-    def _take_run_dir(self, fresh: bool, is_run: bool) -> None:
-        """Lock the run directory, then resume the run in it or start one (rank 0's job)."""
-        self._claim = claim(self._run.root)
-        for note in self._claim.notes:
-            log.warning("%s", note)
-        try:
-            self._resume_or_start(fresh, is_run)
-        except BaseException:
-            self.close()
-            raise
-
-    def _resume_or_start(self, fresh: bool, is_run: bool) -> None:
-        run = self._run
-        if fresh and is_run:
-            log.warning("fresh=True: deleting the earlier run in %s", run.root)
-            run.clear()
-            is_run = False
-        if not is_run:
-            self._write_state(self._records, self._decision)
-            return
-        state = run.read_state()
-        changed = self._refuse_other_settings(state)
-        if changed:
-            log.warning(
-                "%s: no generation had finished, so the new settings replace the old (%s)",
-                run.root,
-                "; ".join(changed),
-            )
-            self._write_state(self._records, self._decision)
-            return
-        self._records, self._decision = list(state["records"]), state.get("decision")
-        self._observers.resumed(run.root, self._records)
-
-    def _refuse_other_settings(self, state: dict[str, Any]) -> list[str]:
-        """Raise if ``state`` has finished generations under other settings; else return the
-        differences (which may then replace the old settings)."""
-        changed = differences(state["settings"], self.settings)
-        if changed and state["records"]:
-            raise InputError(
-                f"{self.run_dir} holds a run made with other settings, so it cannot be "
-                "resumed:\n  "
-                + "\n  ".join(changed)
-                + "\nUse the run's settings, another run_dir, or fresh=True to start over."
-            )
-        return changed
-
-    def _write_state(self, records: list[GenerationRecord], decision: DecisionState | None) -> None:
-        self._run.write_state(self.settings, records, decision)
-
     def close(self) -> None:
-        """Release the run directory's lock and the observers' files (both are also released
-        when the object or the process ends); the run can be resumed by a new Lineage."""
-        if self._claim is not None:
-            self._claim.release()
+        """Release the run directory's lock and close the TensorBoard files. The lock is also
+        released when this object is garbage collected or its process ends; a new Lineage over
+        the same run directory resumes the run."""
+        self._state.close()
         self._observers.close()
 
     def _check_ranks(self, train_loader: DataLoader) -> None:
@@ -337,11 +255,11 @@ class Lineage:
     @property
     def done(self) -> bool:
         """True once the stop rule has stopped the lineage."""
-        return bool(self._decision and self._decision.get("stop"))
+        return self._state.done
 
     def __iter__(self) -> Iterator[Generation]:
         while not self.done:
-            gen = self._begin(len(self._records))
+            gen = self._begin(len(self._state.records))
             yield gen
             if not gen.finished:
                 raise RuntimeError(
@@ -363,10 +281,11 @@ class Lineage:
     @property
     def result(self) -> Result:
         """The records so far, the best generation and (once stopped) the stop reason."""
-        decision: Any = self._decision or {}
+        decision: Any = self._state.decision or {}
+        records = self._state.records
         return Result(
-            records=list(self._records),
-            best=StopRule.best(self._records),
+            records=list(records),
+            best=StopRule.best(records),
             stop_reason=decision.get("reason") if decision.get("stop") else None,
             run_dir=self.run_dir,
             model_fn=self.model_fn,
@@ -384,13 +303,14 @@ class Lineage:
         if not self.done:
             raise RuntimeError("the matched baseline needs a finished lineage; run it first")
         return train_matched_baseline(
-            self._inputs, self.model_fn, self._records, make_fit, self._observers
+            self._inputs, self.model_fn, self._state.records, make_fit, self._observers
         )
 
     def _begin(self, index: int) -> Generation:
         """Hand out generation ``index``: its teacher's targets (or the teacher itself, online),
         every random stream seeded, a fresh checked model."""
-        previous = self._records[-1] if self._records else None
+        records = self._state.records
+        previous = records[-1] if records else None
         online = store = None
         if previous is not None and self.settings["teacher_mode"] == "online":
             online = load_generation(self.model_fn, self.run_dir, previous)
@@ -419,41 +339,44 @@ class Lineage:
         finished generations]``; ``ok = 0`` when rank 0 failed, so that they raise instead of
         waiting for a decision that never comes. They then read rank 0's records.
         """
-        if gen.index != len(self._records) or self.done:
+        state = self._state
+        if gen.index != len(state.records) or self.done:
             raise RuntimeError(
                 f"generation {gen.index} finished out of turn (the lineage has "
-                f"{len(self._records)} finished generations)"
+                f"{len(state.records)} finished generations)"
             )
 
         def record_here() -> GenerationRecord:
             assert write is not None  # rank 0 (or one process) holds the passes
             return self._record(gen, write())
 
-        record, (stop, finished) = distributed.on_rank_zero_telling(
-            record_here,
-            f"finishing generation {gen.index}",
-            lambda r: (int("stop" in r), len(self._records)),
-            2,
+        def told(record: GenerationRecord) -> tuple[int, int]:
+            return int("stop" in record), len(state.records)
+
+        outcome = distributed.on_rank_zero_telling(
+            record_here, f"finishing generation {gen.index}", told, 2
         )
-        return record if record is not None else self._follow(gen.index, stop, finished)
+        record, (stop, finished) = outcome
+        return record if record is not None else state.follow(gen.index, stop, finished)
 
     def _record(self, gen: Generation, measured: Measured) -> GenerationRecord:
         """Add the figures that need earlier generations, decide, write ``lineage.json``, tell
         the observers. Memory follows the file: if the write fails, the generation can be
         finished again."""
         record, heldout = measured.record, measured.heldout
+        records = self._state.records
         self._heldout.add(gen.index, heldout.outputs)
         labels_path = self._run.heldout_labels_path
         if not labels_path.is_file():
             labels = heldout.labels.numpy()
             atomic_write(labels_path, lambda handle: np.save(handle, labels, allow_pickle=False))
         if not record["diverged"]:
-            members = [r["generation"] for r in self._records if not r.get("diverged")]
+            members = [r["generation"] for r in records if not r.get("diverged")]
             record["ensemble"] = self._heldout.ensemble_metric(members, heldout)
             if gen.teacher is not None:
                 record["agreement"] = self._heldout.agreement(gen.teacher, heldout)
             self._teachers.fresh = TargetStore(gen.directory)
-        decision = self.rule.decide([*self._records, record])
+        decision = self.rule.decide([*records, record])
         if decision.stop:
             record["stop"] = {"reason": decision.reason, "best": decision.best, **decision.detail}  # type: ignore[typeddict-item]
         state: DecisionState = {
@@ -462,31 +385,9 @@ class Lineage:
             "best": decision.best,
             "detail": decision.detail,
         }
-        self._write_state([*self._records, record], state)
-        self._records.append(record)
-        self._decision = state
-        self._observers.generation_ended(record, self._records, state)
+        self._state.commit(record, state)
+        self._observers.generation_ended(record, self._state.records, state)
         return record
-
-    def _follow(self, index: int, stop: int, finished: int) -> GenerationRecord:
-        """A rank other than 0: take rank 0's records from ``lineage.json``, checked against
-        its broadcast, so that every rank holds the same records and leaves the loop at the
-        same generation."""
-        state = self._run.read_state()
-        records, decision = list(state["records"]), state.get("decision") or {}
-        if (
-            len(records) != finished
-            or records[-1]["generation"] != index
-            or bool(decision.get("stop")) != bool(stop)
-        ):
-            raise RuntimeError(
-                f"rank {distributed.rank()} reads {len(records)} finished generations in "
-                f"{self.state_path}, but rank 0 has just recorded generation {index} of "
-                f"{finished}: every rank must see the same run directory (one machine, or a file "
-                "system shared by the machines)"
-            )
-        self._records, self._decision = records, decision
-        return records[-1]
 
 
 def _online(settings: Settings) -> bool:
@@ -504,7 +405,7 @@ def _checked_arguments(
     roles = ("train_loader", "heldout_loader", "test_loader")
     for role, loader in zip(roles, loaders, strict=True):
         if loader is not None or role != "test_loader":
-            problems.attempt(lambda loader=loader, role=role: check_loader(loader, role))
+            problems.attempt(functools.partial(check_loader, loader, role))
     if heldout_loader is train_loader or (
         isinstance(heldout_loader, DataLoader)
         and isinstance(train_loader, DataLoader)

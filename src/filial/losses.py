@@ -24,7 +24,7 @@ from __future__ import annotations
 
 import math
 import numbers
-from typing import NamedTuple
+from typing import Any, NamedTuple
 
 import torch
 import torch.nn.functional as F
@@ -83,6 +83,27 @@ def _is_integer(labels: torch.Tensor) -> bool:
     return not (labels.is_floating_point() or labels.is_complex())
 
 
+def _fitting(targets: Any, outputs: torch.Tensor) -> Any:
+    """``targets`` on the outputs' device, checked against the outputs' shape."""
+    if isinstance(targets, TopKTargets):
+        if targets.values.device != outputs.device:
+            targets = targets.to(outputs.device, non_blocking=True)
+        if len(targets.values) != len(outputs):
+            raise InputError(
+                f"{len(targets.values)} top-k targets for a batch of {len(outputs)} outputs"
+            )
+        return targets
+    if targets.device != outputs.device:
+        targets = targets.to(outputs.device, non_blocking=True)
+    if targets.shape != outputs.shape:
+        raise InputError(
+            f"the model returned outputs of shape {tuple(outputs.shape)} but the teacher's "
+            f"targets have shape {tuple(targets.shape)}: every generation must have the same "
+            "output width"
+        )
+    return targets
+
+
 class StudentLoss:
     """``loss(outputs, labels, targets)`` for one lineage's settings (``targets`` None: labels).
 
@@ -110,10 +131,10 @@ class StudentLoss:
             raise ValueError(
                 f"label_weight should be a finite number, but got label_weight={label_weight!r}"
             )
-        self.kind = kind
-        self.temperature = float(temperature)
-        self.label_weight = float(label_weight)
-        self._checked = False
+        self.kind: str = kind
+        self.temperature: float = float(temperature)
+        self.label_weight: float = float(label_weight)
+        self._checked: bool = False
 
     def check(self, outputs: torch.Tensor, labels: torch.Tensor) -> None:
         """Raise a clear error when labels and outputs cannot go together."""
@@ -178,22 +199,7 @@ class StudentLoss:
             labels = labels.to(outputs.device, non_blocking=True)
         if targets is None:
             return self.label_term(outputs, labels)
-        if isinstance(targets, TopKTargets):
-            if targets.values.device != outputs.device:
-                targets = targets.to(outputs.device, non_blocking=True)
-        elif targets.device != outputs.device:
-            targets = targets.to(outputs.device, non_blocking=True)
-        if isinstance(targets, TopKTargets):
-            if len(targets.values) != len(outputs):
-                raise InputError(
-                    f"{len(targets.values)} top-k targets for a batch of {len(outputs)} outputs"
-                )
-        elif targets.shape != outputs.shape:
-            raise InputError(
-                f"the model returned outputs of shape {tuple(outputs.shape)} but the teacher's "
-                f"targets have shape {tuple(targets.shape)}: every generation must have the same "
-                "output width"
-            )
+        targets = _fitting(targets, outputs)
         weight = self.label_weight
         loss = self.teacher_term(outputs, targets)
         if weight != 0.0:

@@ -137,13 +137,13 @@ class TensorBoardRuns(Observer):
     def generation_ended(
         self, record: GenerationRecord, records: Sequence[GenerationRecord], decision: DecisionState
     ) -> None:
-        self.log.generation(record, records[0])
+        self.log.generation(dict(record), dict(records[0]))
         if decision["stop"]:
             self.log.session(self.settings, session_metrics(records))
             self.log.close()
 
     def baseline_ended(self, record: BaselineRecord, records: Sequence[GenerationRecord]) -> None:
-        self.log.baseline(record, [r["generation"] for r in records])
+        self.log.baseline(dict(record), [r["generation"] for r in records])
         self.log.close()
 
     def close(self) -> None:

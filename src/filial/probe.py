@@ -71,7 +71,7 @@ class Probe:
 
 
 def _global_states() -> tuple[Any, ...]:
-    legacy = np.random.get_state()
+    legacy: Any = np.random.get_state()
     return (torch.get_rng_state(), random.getstate(), legacy[1].copy(), legacy[2:])
 
 
@@ -103,7 +103,7 @@ def probe(loader: DataLoader, probes: int = 64) -> Probe:
         before = _global_states()
         samples = [dataset[i] for i in indices]
         fetched = _global_states()
-        inputs, labels = split_pair(loader.collate_fn(samples))  # type: ignore[misc]
+        inputs, labels = split_pair(loader.collate_fn(samples))
         return inputs, labels, _moved(before, fetched), _moved(fetched, _global_states())
 
     def digest_of(value: Any) -> Any:

@@ -277,7 +277,9 @@ def _toml_value(value: Any) -> str:
     )
 
 
-def resolve(raw: dict[str, Any], overrides: Sequence[str] = (), source: Path | None = None):
+def resolve(
+    raw: dict[str, Any], overrides: Sequence[str] = (), source: Path | None = None
+) -> Recipe:
     """Check a parsed recipe, apply ``--set`` overrides, fill defaults; return a :class:`Recipe`."""
     raw = copy.deepcopy(raw)
     for text in overrides:

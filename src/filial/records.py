@@ -15,7 +15,7 @@ from __future__ import annotations
 
 import math
 import numbers
-from typing import Any, NotRequired, TypedDict
+from typing import Any, NotRequired, TypedDict, TypeGuard
 
 
 class EpochEntry(TypedDict, total=False):
@@ -79,7 +79,7 @@ class BaselineRecord(GenerationRecord):
     epochs_matched: int
 
 
-def is_number(value: Any) -> bool:
+def is_number(value: Any) -> TypeGuard[float]:
     """A real, finite number that is not a bool (what a record's metric fields hold)."""
     return isinstance(value, numbers.Real) and not isinstance(value, bool) and math.isfinite(value)
 

@@ -8,10 +8,9 @@ plain data (what ``filial report --json`` prints); :func:`format_report` turns i
 from __future__ import annotations
 
 import json
-import math
 import statistics
 import tomllib
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
@@ -19,6 +18,7 @@ import numpy as np
 import torch
 
 from .metrics import default_metric
+from .records import is_number
 from .rundir import RECIPE_FILE, STATE_FILE, RecipeRunDirectory, RunDirectory
 from .stopping import paired_bootstrap
 
@@ -54,7 +54,9 @@ def _read_json(path: Path) -> dict[str, Any]:
         raise ValueError(f"{path} cannot be read ({exc})") from exc
 
 
-def _gain_interval(run: RunDirectory, records: list[dict[str, Any]], best: int | None):
+def _gain_interval(
+    run: RunDirectory, records: list[dict[str, Any]], best: int | None
+) -> dict[str, Any] | None:
     """Paired bootstrap of the kept generation's held-out gain over generation 0 (default
     metric only: a custom metric is not stored with the run)."""
     if best is None or not run.heldout_labels_path.is_file():
@@ -100,11 +102,12 @@ def summarize_lineage(lineage_dir: str | Path, seed: int | None = None) -> dict[
     }
 
 
-def spread(values: Sequence[float]) -> tuple[float | None, float | None]:
-    values = [v for v in values if isinstance(v, (int, float)) and math.isfinite(v)]
-    if not values:
+def spread(values: Sequence[float | None]) -> tuple[float | None, float | None]:
+    """Mean and sample standard deviation of the finite values (0.0 for one value)."""
+    numbers = [float(v) for v in values if is_number(v)]
+    if not numbers:
         return None, None
-    return statistics.fmean(values), statistics.stdev(values) if len(values) > 1 else 0.0
+    return statistics.fmean(numbers), statistics.stdev(numbers) if len(numbers) > 1 else 0.0
 
 
 def summarize(run_dir: str | Path) -> dict[str, Any]:
@@ -148,7 +151,7 @@ def summarize(run_dir: str | Path) -> dict[str, Any]:
 
 
 def generation_table(
-    records: Sequence[dict[str, Any]], best: int | None, targets: str | None = None
+    records: Sequence[Mapping[str, Any]], best: int | None, targets: str | None = None
 ) -> str:
     """One row per generation: held-out, test, train vs labels, ensemble, entropy/norm, seconds."""
     if targets is None:

@@ -24,15 +24,20 @@ knows about models or loops; other rooms ask this one for paths.
 from __future__ import annotations
 
 import json
+import logging
 import re
 import shutil
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+from . import distributed
 from ._io import LockedError, RunLock, atomic_write_json, sweep_temporaries
 from .errors import InputError
 from .records import DecisionState, GenerationRecord
+from .settings import differences
+
+log = logging.getLogger("filial")
 
 STATE_FILE = "lineage.json"
 STATE_FORMAT = "filial.lineage/1"
@@ -236,3 +241,130 @@ class RecipeRunDirectory:
             for entry in sorted(self.root.glob("seed*"))
             if entry.is_dir() and (entry / STATE_FILE).is_file()
         ]
+
+
+class LineageState:
+    """A lineage's records and decision, kept in step with its ``lineage.json``.
+
+    :meth:`open` takes the run directory (locks it, then resumes the run in it or starts one);
+    :meth:`commit` writes a new record (the file first: if the write fails, memory still agrees
+    with the file and the generation can be finished again); :meth:`follow` is how a rank other
+    than 0 takes the records rank 0 has written.
+    """
+
+    def __init__(self, run: RunDirectory, settings: dict[str, Any]) -> None:
+        self.run = run
+        self.settings = settings
+        self.records: list[GenerationRecord] = []
+        self.decision: DecisionState | None = None
+        self.resumed = False  # the run directory held finished generations of these settings
+        self._claim: Claim | None = None
+
+    @property
+    def done(self) -> bool:
+        return bool(self.decision and self.decision.get("stop"))
+
+    def open(self, fresh: bool) -> None:
+        """Lock the run directory, then resume or start the run in it.
+
+        Note: several processes. Every rank makes the read-only checks first, so bad settings
+        fail on all of them; once all have looked, rank 0 alone takes the lock and resumes or
+        starts the run, and the other ranks then read the state it left.
+        """
+        run = self.run
+        run.refuse_unusable()
+        is_run = run.is_run
+        if is_run and not fresh:
+            self._refuse_other_settings(run.read_state())  # before touching anything
+        if not distributed.is_distributed():
+            self._take(fresh, is_run)
+            return
+        distributed.barrier()
+        distributed.on_rank_zero(
+            lambda: self._take(fresh, is_run), f"opening the run directory {run.root}"
+        )
+        if not distributed.is_main():
+            if not run.is_run:
+                raise RuntimeError(
+                    f"rank {distributed.rank()} finds no {run.state_path}, which rank 0 has "
+                    "written: every rank must see the same run directory (one machine, or a "
+                    "file system shared by the machines)"
+                )
+            state = run.read_state()
+            self.records, self.decision = list(state["records"]), state.get("decision")
+
+    def _take(self, fresh: bool, is_run: bool) -> None:
+        """Rank 0's part of :meth:`open`."""
+        self._claim = claim(self.run.root)
+        for note in self._claim.notes:
+            log.warning("%s", note)
+        try:
+            self._resume_or_start(fresh, is_run)
+        except BaseException:
+            self.close()
+            raise
+
+    def _resume_or_start(self, fresh: bool, is_run: bool) -> None:
+        run = self.run
+        if fresh and is_run:
+            log.warning("fresh=True: deleting the earlier run in %s", run.root)
+            run.clear()
+            is_run = False
+        if not is_run:
+            run.write_state(self.settings, self.records, self.decision)
+            return
+        state = run.read_state()
+        changed = self._refuse_other_settings(state)
+        if changed:
+            log.warning(
+                "%s: no generation had finished, so the new settings replace the old (%s)",
+                run.root,
+                "; ".join(changed),
+            )
+            run.write_state(self.settings, self.records, self.decision)
+            return
+        self.records, self.decision = list(state["records"]), state.get("decision")
+        self.resumed = bool(self.records)
+
+    def _refuse_other_settings(self, state: dict[str, Any]) -> list[str]:
+        """Raise if ``state`` has finished generations under other settings; else return the
+        differences (which may then replace the old settings)."""
+        changed = differences(state["settings"], self.settings)
+        if changed and state["records"]:
+            raise InputError(
+                f"{self.run.root} holds a run made with other settings, so it cannot be "
+                "resumed:\n  "
+                + "\n  ".join(changed)
+                + "\nUse the run's settings, another run_dir, or fresh=True to start over."
+            )
+        return changed
+
+    def commit(self, record: GenerationRecord, decision: DecisionState) -> None:
+        """Write ``record`` (the newest generation's) and ``decision``, then keep them."""
+        self.run.write_state(self.settings, [*self.records, record], decision)
+        self.records.append(record)
+        self.decision = decision
+
+    def follow(self, index: int, stop: int, finished: int) -> GenerationRecord:
+        """A rank other than 0: take rank 0's records from ``lineage.json``, checked against
+        its broadcast (``stop``, ``finished`` generations), so that every rank holds the same
+        records and leaves the loop at the same generation."""
+        state = self.run.read_state()
+        records, decision = list(state["records"]), state.get("decision") or {}
+        if (
+            len(records) != finished
+            or records[-1]["generation"] != index
+            or bool(decision.get("stop")) != bool(stop)
+        ):
+            raise RuntimeError(
+                f"rank {distributed.rank()} reads {len(records)} finished generations in "
+                f"{self.run.state_path}, but rank 0 has just recorded generation {index} of "
+                f"{finished}: every rank must see the same run directory (one machine, or a file "
+                "system shared by the machines)"
+            )
+        self.records, self.decision = records, state.get("decision")
+        return records[-1]
+
+    def close(self) -> None:
+        if self._claim is not None:
+            self._claim.release()

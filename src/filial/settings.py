@@ -23,6 +23,7 @@ from typing import Any
 
 from .errors import Problems
 from .losses import StudentLoss
+from .metrics import metric_name
 from .stopping import StopRule, as_count
 from .store import STORE_DTYPES
 
@@ -146,6 +147,28 @@ class DataFacts:
     test_size: int | None
     train_fingerprint: str
     heldout_fingerprint: str
+
+    @classmethod
+    def of(
+        cls,
+        loaders: tuple[Any, Any, Any],
+        probes: tuple[Any, Any],
+        replay: Any,
+        metric: Any,
+        model_fn: Any,
+    ) -> DataFacts:
+        """The facts of the ``(train, heldout, test)`` loaders and their probes."""
+        train, heldout, test = loaders
+        return cls(
+            replayed=replay is not None,
+            metric=metric_name(metric),
+            model_fn=metric_name(model_fn),
+            train_size=len(train.dataset),
+            heldout_size=len(heldout.dataset),
+            test_size=None if test is None else len(test.dataset),
+            train_fingerprint=probes[0].fingerprint,
+            heldout_fingerprint=probes[1].fingerprint,
+        )
 
 
 def saved_settings(settings: Settings, facts: DataFacts) -> dict[str, Any]:

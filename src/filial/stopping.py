@@ -31,9 +31,8 @@ earlier, cheaper one.
 from __future__ import annotations
 
 import math
-import numbers
 import operator
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -41,6 +40,7 @@ import numpy as np
 import torch
 
 from .metrics import accuracy
+from .records import is_number
 
 STOP_REASONS = ("no-gain", "collapse", "diverged", "max-generations")
 
@@ -53,10 +53,6 @@ class Decision:
     reason: str | None
     best: int | None
     detail: dict[str, Any] = field(default_factory=dict)
-
-
-def _finite(value: Any) -> bool:
-    return isinstance(value, numbers.Real) and not isinstance(value, bool) and math.isfinite(value)
 
 
 def as_count(value: Any, name: str, minimum: int = 0) -> int:
@@ -94,11 +90,11 @@ class StopRule:
             patience = as_count(patience, "patience", minimum=1)
         except ValueError as exc:
             problems.append(str(exc))
-        if not _finite(min_gain) or min_gain < 0:
+        if not is_number(min_gain) or min_gain < 0:
             problems.append(f"min_gain should be a finite number >= 0, but got {min_gain!r}")
-        if not _finite(collapse_share) or not 0 < collapse_share <= 1:
+        if not is_number(collapse_share) or not 0 < collapse_share <= 1:
             problems.append(f"collapse_share should lie in (0, 1], but got {collapse_share!r}")
-        if not _finite(collapse_norm) or collapse_norm < 0:
+        if not is_number(collapse_norm) or collapse_norm < 0:
             problems.append(f"collapse_norm should be >= 0, but got {collapse_norm!r}")
         if problems:
             raise ValueError("; ".join(problems))
@@ -109,39 +105,39 @@ class StopRule:
         self.collapse_norm = float(collapse_norm)
 
     @staticmethod
-    def best(records: Sequence[dict[str, Any]]) -> int | None:
+    def best(records: Sequence[Mapping[str, Any]]) -> int | None:
         """Held-out argmax over generations that did not diverge; ties to the earlier one."""
         best, best_value = None, -math.inf
         for record in records:
             value = record.get("heldout")
-            if record.get("diverged") or not _finite(value):
+            if record.get("diverged") or not is_number(value):
                 continue
             if value > best_value:
                 best, best_value = record["generation"], value
         return best
 
-    def collapsed(self, record: dict[str, Any], first: dict[str, Any]) -> str | None:
+    def collapsed(self, record: Mapping[str, Any], first: Mapping[str, Any]) -> str | None:
         """Why ``record`` looks degenerate, or None."""
         share = record.get("prediction_share")
         label_share = record.get("label_share")
         if (
-            _finite(share)
+            is_number(share)
             and share >= self.collapse_share
-            and (not _finite(label_share) or share > label_share)
+            and (not is_number(label_share) or share > label_share)
         ):
             return f"{share:.1%} of training predictions fall in one class"
         norm, norm0 = record.get("output_norm"), first.get("output_norm")
         if (
             record["generation"] > 0
-            and _finite(norm)
-            and _finite(norm0)
+            and is_number(norm)
+            and is_number(norm0)
             and norm0 > 0
             and norm < self.collapse_norm * norm0
         ):
             return f"mean output norm {norm:.3g} shrank below {self.collapse_norm} x generation 0's"
         return None
 
-    def decide(self, records: Sequence[dict[str, Any]]) -> Decision:
+    def decide(self, records: Sequence[Mapping[str, Any]]) -> Decision:
         """The decision after the last of ``records`` (one per finished generation, in order)."""
         if not records:
             raise ValueError("decide() needs the record of at least one finished generation")
@@ -156,7 +152,7 @@ class StopRule:
         running, last_gain = -math.inf, None
         for record in records:
             value = record.get("heldout")
-            if record.get("diverged") or not _finite(value):
+            if record.get("diverged") or not is_number(value):
                 continue
             if last_gain is None or value > running + self.min_gain:
                 last_gain = record["generation"]

@@ -1,10 +1,13 @@
 """The on-disk cache of one teacher's outputs on the training set.
 
-A store is a folder with two files:
+A store is a folder with two files, three in the top-k layout:
 
 ``targets.npy``
     the teacher's outputs, shape ``(N, views, C)``, float16 or float32, row ``i`` for dataset
-    index ``i``; read memory-mapped, so a batch reads only its own rows.
+    index ``i``; read memory-mapped, so a batch reads only its own rows. In the top-k layout,
+    ``(N, views, k)``: the k largest outputs of each (sample, view), largest first.
+``targets_index.npy``
+    top-k layout only: the class of each kept output, int16 (int32 past 32,767 classes).
 ``targets.json``
     the manifest: layout, dtype, shape, byte size and sha256 of the array, the fingerprint of the
     training set it was computed on and the sha256 of the teacher checkpoint that produced it.
@@ -50,6 +53,29 @@ class StoreError(InputError):
     """A target store is missing, incomplete, damaged, or belongs to other data."""
 
 
+def _storable(outputs: np.ndarray, dtype: str, top_k: int | None) -> np.ndarray:
+    """``outputs`` if they can be stored as ``dtype`` (finite, in range, ``(N, views, C)``)."""
+    if dtype not in STORE_DTYPES:
+        raise StoreError(f"store dtype must be one of {STORE_DTYPES}, but got {dtype!r}")
+    if outputs.ndim != 3 or 0 in outputs.shape:
+        raise StoreError(
+            f"outputs must have shape (N, views, C) with no empty axis, but got {outputs.shape}"
+        )
+    classes = outputs.shape[2]
+    if top_k is not None and not 1 <= top_k <= classes:
+        raise StoreError(f"top_k should lie in [1, {classes}], but got top_k={top_k!r}")
+    if not np.isfinite(outputs).all():
+        raise StoreError("outputs hold NaN or infinite values; such targets are never stored")
+    if dtype == "float16":
+        peak = float(np.abs(outputs).max())
+        if peak > _FLOAT16_MAX:
+            raise StoreError(
+                f"the teacher's outputs reach {peak:.3g}, beyond float16's range "
+                f"({_FLOAT16_MAX:.0f}); pass store_dtype='float32'"
+            )
+    return outputs
+
+
 class TargetStore:
     """Read access to a finished store; :meth:`write` makes one."""
 
@@ -82,25 +108,8 @@ class TargetStore:
         ``targets.npy`` (N, views, k), with their class indices in ``targets_index.npy``
         (int16, or int32 when C needs it).
         """
-        if dtype not in STORE_DTYPES:
-            raise StoreError(f"store dtype must be one of {STORE_DTYPES}, but got {dtype!r}")
-        outputs = np.asarray(outputs)
-        if outputs.ndim != 3 or 0 in outputs.shape:
-            raise StoreError(
-                f"outputs must have shape (N, views, C) with no empty axis, but got {outputs.shape}"
-            )
+        outputs = _storable(np.asarray(outputs), dtype, top_k)
         count, views, classes = outputs.shape
-        if top_k is not None and not 1 <= top_k <= classes:
-            raise StoreError(f"top_k should lie in [1, {classes}], but got top_k={top_k!r}")
-        if not np.isfinite(outputs).all():
-            raise StoreError("outputs hold NaN or infinite values; such targets are never stored")
-        if dtype == "float16":
-            peak = float(np.abs(outputs).max())
-            if peak > _FLOAT16_MAX:
-                raise StoreError(
-                    f"the teacher's outputs reach {peak:.3g}, beyond float16's range "
-                    f"({_FLOAT16_MAX:.0f}); pass store_dtype='float32'"
-                )
         directory = Path(directory)
         directory.mkdir(parents=True, exist_ok=True)
         manifest_path = directory / cls.MANIFEST

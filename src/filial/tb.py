@@ -22,7 +22,6 @@ time-stamped sub-folder per call, so the hparams summaries are written by hand).
 
 from __future__ import annotations
 
-import math
 import os
 from collections.abc import Sequence
 from pathlib import Path
@@ -30,6 +29,8 @@ from typing import Any
 
 from torch.utils.tensorboard import SummaryWriter
 from torch.utils.tensorboard.summary import hparams
+
+from .records import is_number
 
 LAYOUT = {
     "filial: with versus without generations": {
@@ -68,10 +69,6 @@ _SUMMARY_KEYS = {
 
 
 _RUNNING = ("running_accuracy", "running_neg_mse")
-
-
-def _number(value: Any) -> bool:
-    return isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value)
 
 
 class _Writer:
@@ -123,37 +120,37 @@ class TensorBoardLog:
             with _Writer(self.folder / f"gen{index}") as writer:
                 for entry in epochs:
                     step = int(entry["epoch"])
-                    if _number(entry.get("loss")):
+                    if is_number(entry.get("loss")):
                         writer.add_scalar("train/loss", entry["loss"], step)
                     for name in _RUNNING:
-                        if _number(entry.get(name)):
+                        if is_number(entry.get(name)):
                             writer.add_scalar(f"train/{name}_vs_labels", entry[name], step)
         with self._summary() as writer:
             if index == 0:
                 writer.add_custom_scalars(LAYOUT)
             for key, tag in _SUMMARY_KEYS.items():
-                if _number(record.get(key)):
+                if is_number(record.get(key)):
                     writer.add_scalar(tag, record[key], index)
-            if _number(record.get("heldout")):
+            if is_number(record.get("heldout")):
                 writer.add_scalar("compare/heldout_by_generation", record["heldout"], index)
-            if _number(first.get("heldout")):
+            if is_number(first.get("heldout")):
                 writer.add_scalar("compare/generation_0", first["heldout"], index)
 
     def baseline(self, record: dict[str, Any], generations: Sequence[int]) -> None:
         """The matched baseline: its epoch curves, and its level beside every generation."""
         with _Writer(self.folder / "baseline") as writer:
             for entry in record.get("epochs") or []:
-                if _number(entry.get("loss")):
+                if is_number(entry.get("loss")):
                     writer.add_scalar("train/loss", entry["loss"], int(entry["epoch"]))
                 for name in _RUNNING:
-                    if _number(entry.get(name)):
+                    if is_number(entry.get(name)):
                         writer.add_scalar(
                             f"train/{name}_vs_labels", entry[name], int(entry["epoch"])
                         )
             for key in ("heldout", "test", "train"):
-                if _number(record.get(key)):
+                if is_number(record.get(key)):
                     writer.add_scalar(f"baseline/{key}", record[key], 0)
-        if _number(record.get("heldout")):
+        if is_number(record.get("heldout")):
             with self._summary() as writer:
                 for index in generations:
                     writer.add_scalar("compare/matched_baseline", record["heldout"], index)
@@ -163,7 +160,7 @@ class TensorBoardLog:
         hparam_values = {
             k: v for k, v in settings.items() if isinstance(v, (int, float, str, bool))
         }
-        metric_values = {f"hparams/{k}": float(v) for k, v in metrics.items() if _number(v)}
+        metric_values = {f"hparams/{k}": float(v) for k, v in metrics.items() if is_number(v)}
         with self._summary() as writer:
             file_writer = writer._get_file_writer()
             for summary in hparams(hparam_values, metric_values):
@@ -172,12 +169,16 @@ class TensorBoardLog:
                 writer.add_scalar(tag, value, 0)
 
 
-def seeds_spread(folder: str | os.PathLike[str], means: Sequence[float], stds: Sequence[float]):
+def seeds_spread(
+    folder: str | os.PathLike[str],
+    means: Sequence[float | None],
+    stds: Sequence[float | None],
+) -> None:
     """Across-seed held-out mean and mean +- one standard deviation, per generation."""
     with _Writer(Path(folder) / "seeds") as writer:
         writer.add_custom_scalars(LAYOUT)
         for index, (mean, std) in enumerate(zip(means, stds, strict=True)):
-            if _number(mean) and _number(std):
+            if is_number(mean) and is_number(std):
                 writer.add_scalar("seeds/heldout_mean", mean, index)
                 writer.add_scalar("seeds/heldout_low", mean - std, index)
                 writer.add_scalar("seeds/heldout_high", mean + std, index)

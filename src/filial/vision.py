@@ -259,7 +259,7 @@ def cifar_loaders(
         train = train[:subset]
     test = np.arange(min(test_subset, len(test_base)) if test_subset else len(test_base))
     augment, plain = transforms(dataset, train=True), transforms(dataset, train=False)
-    common = {"batch_size": batch_size, "num_workers": workers}
+    common: dict[str, Any] = {"batch_size": batch_size, "num_workers": workers}
     return (
         DataLoader(
             Split(train_base, train, augment),
