@@ -74,13 +74,14 @@ def wider_in_generation_one():
     return nn.Linear(64, 10 if next(_calls) < 3 else 11)
 
 
-class _Poisoned(nn.Module):
+class _Poisoned(nn.Sequential):
+    """The same parameters as the sound model (so its checkpoint fits), NaN outputs."""
+
     def __init__(self) -> None:
-        super().__init__()
-        self.layer = nn.Linear(64, 10)
+        super().__init__(nn.Linear(64, 10))
 
     def forward(self, x: torch.Tensor) -> torch.Tensor:
-        return self.layer(x) * float("nan")
+        return super().forward(x) * float("nan")
 
 
 _nan_calls = itertools.count()

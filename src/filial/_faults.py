@@ -6,7 +6,8 @@ point of that kind whose name ends with ``NAME``, it kills itself with SIGKILL (
 uncatchable kill, as a power cut would be) or, with ``=enospc``, raises the error a full disk
 raises. Kinds: ``batch`` (a training batch of ``fit_epochs``, name ``genG``), ``teacher`` (a batch
 of the teacher pass, name ``genG``), ``write`` (an atomic write, after the payload reached the
-temporary file and before it replaces the target; the name is the target's path).
+temporary file and before it replaces the target; the name is the target's path), ``start`` (a
+step of ``filial run`` before training: ``claimed``, ``recipe``, ``seedS``).
 """
 
 from __future__ import annotations

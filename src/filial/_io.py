@@ -25,6 +25,11 @@ from ._faults import fault_point
 _TEMP_RE = re.compile(r"^\..+\.tmp-(\d+)$")
 
 
+def is_temporary(path: Path) -> bool:
+    """True for the name of an atomic write's temporary file (``.NAME.tmp-PID``)."""
+    return _TEMP_RE.match(path.name) is not None
+
+
 def _temp_name(path: Path) -> Path:
     return path.with_name(f".{path.name}.tmp-{os.getpid()}")
 

@@ -26,6 +26,7 @@ import tomllib
 import traceback
 from collections.abc import Sequence
 from dataclasses import dataclass
+from pathlib import Path
 from typing import Any
 
 from torch import nn
@@ -33,13 +34,22 @@ from torch.utils.data import DataLoader
 from tqdm.auto import tqdm
 
 from . import recipe as recipes
+from ._faults import fault_point
 from ._io import LockedError, atomic_write
 from .data import check_loader
 from .errors import InputError, Problems
 from .fit import EpochFit, fit_epochs
 from .lineage import Lineage
 from .report import format_report, spread, summarize
-from .rundir import RECIPE_FILE, Claim, RecipeRunDirectory, claim, refuse_unusable
+from .rundir import (
+    RECIPE_FILE,
+    Claim,
+    RecipeRunDirectory,
+    claim,
+    foreign_entries,
+    refuse_unusable,
+    seed_name,
+)
 from .settings import Settings
 from .tb import seeds_spread
 
@@ -145,7 +155,7 @@ def _prepare_run_dir(recipe: recipes.Recipe, fresh: bool) -> tuple[RecipeRunDire
     run = RecipeRunDirectory(recipe["run"]["run_dir"])
     saved = run.recipe_path
     ours = recipes.is_saved_recipe(saved)
-    refuse_unusable(run.root, ours, f"{RECIPE_FILE} written by filial run", "--run-dir")
+    refuse_unusable(run.root, lambda: ours, f"{RECIPE_FILE} written by filial run", "--run-dir")
     if ours and not fresh:
         try:
             old = recipes.Recipe(tomllib.loads(saved.read_text(encoding="utf-8"))).comparable()
@@ -246,21 +256,31 @@ def _resume_command(argv: Sequence[str]) -> str:
 def _open(
     args: argparse.Namespace, quiet: bool
 ) -> tuple[Plan, RecipeRunDirectory, Claim, list[Lineage]]:
-    """Check the recipe, lock the run directory, build one Lineage per seed (each checks its
-    data and model before it touches its folder and, with ``--fresh``, clears it); then remove
-    the rest of an earlier run and save the recipe. On a refusal nothing is left behind: the
-    locks are released and a run directory made here is removed."""
+    """Check the recipe, lock the run directory, save the recipe there first if the directory
+    holds no run yet (its identity: from then on every moment is resumable), then build one
+    Lineage per seed (each checks its data and model before it touches its folder and, with
+    ``--fresh``, clears it); with ``--fresh`` remove the rest of the earlier run last.
+
+    On a refusal or an interruption nothing is left behind that was not there: the locks are
+    released, and what this call wrote into a directory that held no run is removed.
+    """
     taken: Claim | None = None
     lineages: list[Lineage] = []
+    new_run = False
     try:
         p = plan(args.recipe, args.set, args.run_dir)
         run, taken = _prepare_run_dir(p.recipe, args.fresh)
+        fault_point("start", "claimed")
+        new_run = not run.recipe_path.is_file()
+        if new_run:
+            _save_recipe(p.recipe, run)
+            fault_point("start", "recipe")
         seeds = p.recipe["run"]["seeds"]
         for s in seeds:
             lineages.append(_lineage(p, run, s, quiet=quiet, fresh=args.fresh))
-        if args.fresh:
+            fault_point("start", seed_name(s))
+        if args.fresh and not new_run:
             _start_over(run, seeds)
-        if args.fresh or not run.recipe_path.is_file():
             _save_recipe(p.recipe, run)
     except BaseException:
         for lineage in lineages:
@@ -269,26 +289,44 @@ def _open(
             taken.release()
             if taken.created:
                 shutil.rmtree(taken.directory, ignore_errors=True)
+            elif new_run:
+                _remove_all_but_the_lock(taken.directory)
         raise
     return p, run, taken, lineages
 
 
+def _remove_all_but_the_lock(directory: Path) -> None:
+    """Undo a refused start in a directory that held no run before (so nothing there was the
+    user's: an existing folder is only used when it is empty)."""
+    for entry in foreign_entries(directory):
+        shutil.rmtree(entry, ignore_errors=True) if entry.is_dir() else entry.unlink()
+
+
 def _run(args: argparse.Namespace, argv: Sequence[str]) -> int:
     on_terminal = sys.stderr.isatty()
+    resume = _resume_command(argv)
     try:
         p, run, taken, lineages = _open(args, quiet=on_terminal)
     except (recipes.RecipeError, InputError, LockedError, ValueError, TypeError) as exc:
         print(f"filial: {exc}", file=sys.stderr)
         return EXIT_USAGE
-    resume = _resume_command(argv)
+    except KeyboardInterrupt:
+        print(
+            "\nfilial: interrupted before any generation trained; nothing new was kept. Run it "
+            f"again with:\n  filial {shlex.join(argv)}",
+            file=sys.stderr,
+        )
+        return EXIT_INTERRUPTED
+    kept = (
+        f"--fresh removed the earlier run in {run.root} before this one started; the "
+        "generations this run finished are kept there"
+        if args.fresh
+        else f"Finished generations are kept in {run.root}"
+    )
     try:
         _train(p, run, lineages, on_terminal)
     except InputError as exc:  # found while running (e.g. a model whose width changes)
-        print(
-            f"\nfilial: {exc}\nFinished generations are kept in {run.root}; fix the input and "
-            f"rerun\n  {resume}",
-            file=sys.stderr,
-        )
+        print(f"\nfilial: {exc}\n{kept}; fix the input and rerun\n  {resume}", file=sys.stderr)
         return EXIT_USAGE
     except KeyboardInterrupt:
         print(
@@ -301,7 +339,7 @@ def _run(args: argparse.Namespace, argv: Sequence[str]) -> int:
         traceback.print_exc(file=sys.stderr)
         print(
             f"filial: the run failed: {type(exc).__name__}: {exc}\n"
-            f"Finished generations are kept in {run.root}; fix the cause and rerun\n  {resume}",
+            f"{kept}; fix the cause and rerun\n  {resume}",
             file=sys.stderr,
         )
         return EXIT_FAILED

@@ -61,6 +61,8 @@ class GenerationInputs:
     store: StoreSpec
     write_targets: bool = True  # False for a model nobody distils from (a baseline)
     replay: Replay | None = None  # the training data augment: fetch (sample, view) under seeds
+    # Refuses a finished model that is not what model_fn builds (models.ModelChecks.finished).
+    check_finished: Callable[[nn.Module, int], None] | None = None
 
 
 @dataclass
@@ -155,6 +157,8 @@ class Generation:
         if not isinstance(model, nn.Module):
             raise TypeError(f"finish() needs the trained nn.Module, but got {type(model).__name__}")
         inputs = self._inputs
+        if inputs.check_finished is not None:
+            inputs.check_finished(model, self.index)
         seed = stream_seed(inputs.seed, Stream.PASSES, self.index)
         fault = f"gen{self.index}" if armed("teacher") else None
         # Every rank takes part in the passes (each scores its shard); only rank 0 gets them.

@@ -188,6 +188,7 @@ class Lineage:
             store=spec,
             write_targets=not _online(settings),  # online students never read a cache
             replay=replay,
+            check_finished=self._checks.finished,
         )
         self._teachers = TeacherStores(
             self._run, model_fn, train_loader, replay, spec, settings.seed
@@ -302,6 +303,7 @@ class Lineage:
         """
         if not self.done:
             raise RuntimeError("the matched baseline needs a finished lineage; run it first")
+        self._state.check_current("training the matched baseline")
         return train_matched_baseline(
             self._inputs, self.model_fn, self._state.records, make_fit, self._observers
         )
@@ -309,6 +311,7 @@ class Lineage:
     def _begin(self, index: int) -> Generation:
         """Hand out generation ``index``: its teacher's targets (or the teacher itself, online),
         every random stream seeded, a fresh checked model."""
+        self._state.check_current(f"handing out generation {index}")
         records = self._state.records
         previous = records[-1] if records else None
         online = store = None
@@ -340,6 +343,7 @@ class Lineage:
         waiting for a decision that never comes. They then read rank 0's records.
         """
         state = self._state
+        state.check_current(f"finishing generation {gen.index}")
         if gen.index != len(state.records) or self.done:
             raise RuntimeError(
                 f"generation {gen.index} finished out of turn (the lineage has "
@@ -400,7 +404,15 @@ def _checked_arguments(
     """Check every argument, then the data's first samples; raise all problems together."""
     train_loader, heldout_loader, test_loader = loaders
     problems = Problems()
-    if not callable(model_fn):
+    if isinstance(model_fn, nn.Module):
+        problems.add(
+            TypeError(
+                f"model_fn must be a function that builds a new model each time it is called "
+                f"(filial calls it once per generation), but got a {type(model_fn).__name__} "
+                "module: pass make_model, not make_model()"
+            )
+        )
+    elif not callable(model_fn):
         problems.add(TypeError(f"model_fn must be callable, but got {model_fn!r}"))
     roles = ("train_loader", "heldout_loader", "test_loader")
     for role, loader in zip(roles, loaders, strict=True):

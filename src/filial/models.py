@@ -15,6 +15,7 @@ from typing import Any
 import torch
 from torch import nn
 
+from .checkpoint import unwrap
 from .errors import InputError
 from .evaluation import probe_outputs
 from .losses import StudentLoss
@@ -35,6 +36,9 @@ class ModelChecks:
         outputs = self.outputs(model)
         loss.check(outputs, torch.as_tensor(labels))
         self.width = int(outputs.shape[1])
+        # What every finished model must hold: the parameter and buffer names and shapes of
+        # what model_fn builds (a checkpoint of anything else would poison the run directory).
+        self.shapes = _shapes(model)
 
     @staticmethod
     def _built(model: Any) -> nn.Module:
@@ -61,6 +65,33 @@ class ModelChecks:
             )
         return outputs
 
+    def finished(self, model: nn.Module, index: int) -> None:
+        """Refuse a trained model that is not what ``model_fn`` builds (other names or shapes
+        of parameters and buffers), before anything of generation ``index`` is written."""
+        found = _shapes(unwrap(model))
+        if found == self.shapes:
+            return
+        missing = [k for k in self.shapes if k not in found]
+        extra = [k for k in found if k not in self.shapes]
+        reshaped = [
+            f"{k} {found[k]} instead of {self.shapes[k]}"
+            for k in self.shapes
+            if k in found and found[k] != self.shapes[k]
+        ]
+        details = "; ".join(
+            part
+            for part in (
+                f"missing {_some(missing)}" if missing else "",
+                f"unexpected {_some(extra)}" if extra else "",
+                f"shaped {_some(reshaped)}" if reshaped else "",
+            )
+            if part
+        )
+        raise InputError(
+            f"generation {index} was finished with a model that is not what model_fn builds "
+            f"({details}); pass gen.finish the module trained from gen.model"
+        )
+
     def new_model(self, index: int) -> nn.Module:
         """``model_fn()`` for generation ``index`` (the caller has seeded the generators):
         a new module with parameters of its own and the lineage's output width."""
@@ -86,3 +117,13 @@ class ModelChecks:
             )
         self._previous = weakref.ref(model)
         return model
+
+
+def _shapes(model: nn.Module) -> dict[str, tuple[int, ...]]:
+    return {name: tuple(value.shape) for name, value in model.state_dict().items()}
+
+
+def _some(items: list[str], shown: int = 3) -> str:
+    return ", ".join(items[:shown]) + (
+        f" and {len(items) - shown} more" if len(items) > shown else ""
+    )

@@ -23,16 +23,21 @@ knows about models or loops; other rooms ask this one for paths.
 
 from __future__ import annotations
 
+import errno
 import json
 import logging
+import os
 import re
 import shutil
+import time
+import weakref
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 from . import distributed
-from ._io import LockedError, RunLock, atomic_write_json, sweep_temporaries
+from ._io import LockedError, RunLock, atomic_write_json, is_temporary, sweep_temporaries
 from .errors import InputError
 from .records import DecisionState, GenerationRecord
 from .settings import differences
@@ -67,17 +72,40 @@ def seed_name(seed: int) -> str:
 
 
 def foreign_entries(directory: Path) -> list[Path]:
-    """Entries of ``directory`` other than its lock file."""
-    return [p for p in directory.iterdir() if p.name != RunLock.NAME]
+    """Entries of ``directory`` other than its lock file and the temporaries of atomic writes
+    (a process killed while it wrote the run's first file leaves one; the claim sweeps it)."""
+    return [p for p in directory.iterdir() if p.name != RunLock.NAME and not is_temporary(p)]
 
 
-def refuse_unusable(directory: Path, is_ours: bool, identity: str, choose: str) -> None:
-    """Refuse a path that is a file, or a folder that holds other things than a filial run
-    (``is_ours`` False: no ``identity`` file of filial's there). ``choose`` says how to pick
-    another (``run_dir=...``, ``--run-dir``)."""
-    if directory.exists() and not directory.is_dir():
-        raise InputError(f"run_dir {directory} exists and is not a directory")
-    if directory.is_dir() and not is_ours and foreign_entries(directory):
+def _unusable_path(directory: Path, exc: OSError, choose: str) -> InputError:
+    reason = exc.strerror or str(exc)
+    if exc.errno == errno.ENAMETOOLONG:
+        reason = "a component of the path is longer than the file system allows (255 bytes)"
+    return InputError(
+        f"the run directory {directory} cannot be used: {reason}. Choose another one with {choose}."
+    )
+
+
+def refuse_unusable(
+    directory: Path, is_ours: Callable[[], bool], identity: str, choose: str
+) -> None:
+    """Refuse a path that cannot be a run directory: a file, a path the system refuses (too
+    long, under a file, unreadable), or a folder that holds other things than a filial run
+    (``is_ours()`` False: no ``identity`` file of filial's there). ``choose`` says how to pick
+    another (``another run_dir``, ``--run-dir``)."""
+    try:
+        exists, is_dir = directory.exists(), directory.is_dir()
+        if exists and not is_dir:
+            raise InputError(f"run_dir {directory} exists and is not a directory")
+        if directory.is_symlink() and not exists:
+            raise InputError(
+                f"run_dir {directory} is a symbolic link to {os.readlink(directory)}, which does "
+                f"not exist. Remove the link or choose another one with {choose}."
+            )
+        used = is_dir and not is_ours() and bool(foreign_entries(directory))
+    except OSError as exc:
+        raise _unusable_path(directory, exc, choose) from exc
+    if used:
         raise InputError(
             f"{directory} is not empty and is not a filial run directory (no {identity}); "
             f"filial will not write into it. Choose another one with {choose}."
@@ -101,13 +129,21 @@ def claim(directory: Path) -> Claim:
     """Make ``directory`` if needed, lock it (:class:`~filial._io.LockedError` if a live
     process holds it) and sweep the temporaries of processes that died there."""
     created = not directory.exists()
-    directory.mkdir(parents=True, exist_ok=True)
     try:
+        directory.mkdir(parents=True, exist_ok=True)
         lock = RunLock(directory).acquire()
     except LockedError:
         if created:
             shutil.rmtree(directory, ignore_errors=True)
         raise
+    except OSError as exc:
+        if created:
+            shutil.rmtree(directory, ignore_errors=True)
+        if exc.errno == errno.ENOSPC:
+            raise OSError(
+                errno.ENOSPC, f"no space left on the device to create {directory}"
+            ) from exc
+        raise _unusable_path(directory, exc, "another run directory") from exc
     notes = []
     if lock.previous:
         notes.append(
@@ -174,7 +210,7 @@ class RunDirectory:
         return self.state_path.is_file()
 
     def refuse_unusable(self) -> None:
-        refuse_unusable(self.root, self.is_run, STATE_FILE, "another run_dir")
+        refuse_unusable(self.root, lambda: self.is_run, STATE_FILE, "another run_dir")
 
     def read_state(self) -> dict[str, Any]:
         """``lineage.json``: ``format``, ``settings``, ``records``, ``decision``."""
@@ -243,6 +279,12 @@ class RecipeRunDirectory:
         ]
 
 
+# The newest LineageState of each run directory in this process. The run lock is shared within a
+# process (a notebook may build a new Lineage while an old one is alive), so this is what keeps an
+# older object from overwriting what a newer one wrote.
+_NEWEST: dict[str, weakref.ref[LineageState]] = {}
+
+
 class LineageState:
     """A lineage's records and decision, kept in step with its ``lineage.json``.
 
@@ -258,6 +300,8 @@ class LineageState:
         self.records: list[GenerationRecord] = []
         self.decision: DecisionState | None = None
         self.resumed = False  # the run directory held finished generations of these settings
+        self.opened = time.strftime("%H:%M:%S")
+        self.superseded_by: str | None = None  # a newer state over the same directory
         self._claim: Claim | None = None
 
     @property
@@ -278,6 +322,7 @@ class LineageState:
             self._refuse_other_settings(run.read_state())  # before touching anything
         if not distributed.is_distributed():
             self._take(fresh, is_run)
+            self._become_newest()
             return
         distributed.barrier()
         distributed.on_rank_zero(
@@ -292,6 +337,28 @@ class LineageState:
                 )
             state = run.read_state()
             self.records, self.decision = list(state["records"]), state.get("decision")
+        self._become_newest()
+
+    def _become_newest(self) -> None:
+        key = str(self.run.root.resolve())
+        older = _NEWEST.get(key)
+        previous = older() if older is not None else None
+        if previous is not None and previous is not self:
+            previous.superseded_by = (
+                f"a newer Lineage over the same run directory, made at {self.opened}"
+            )
+        _NEWEST[key] = weakref.ref(self)
+
+    def check_current(self, what: str) -> None:
+        """Refuse ``what`` (finishing a generation, handing one out) for a state that a newer
+        Lineage over the same run directory has replaced: its records may be out of date."""
+        if self.superseded_by is not None:
+            raise InputError(
+                f"cannot go on {what}: this Lineage over {self.run.root} (made at "
+                f"{self.opened}) was replaced by {self.superseded_by}, which may have finished "
+                "generations since; nothing was written. Go on with the newer object (or close() "
+                "this one before making a new one)."
+            )
 
     def _take(self, fresh: bool, is_run: bool) -> None:
         """Rank 0's part of :meth:`open`."""

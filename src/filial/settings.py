@@ -182,10 +182,30 @@ def saved_settings(settings: Settings, facts: DataFacts) -> dict[str, Any]:
 
 def differences(saved: dict[str, Any], current: dict[str, Any]) -> list[str]:
     """``key: old in the run, new now`` for every setting that differs (keys newer than the
-    run's file count as their old default)."""
+    run's file count as their old default).
+
+    ``model_fn`` and ``metric`` are compared by qualified name; a script run as ``python
+    script.py`` names its functions ``__main__:...`` and the same script imported names them
+    ``script:...``, so a ``__main__`` module matches any module with the same qualified name.
+
+    >>> differences({"model_fn": "__main__:make"}, {"model_fn": "mail:make"})
+    []
+    """
     saved = {**_ADDED_LATER, **saved}
     return [
         f"{key}: {saved.get(key)!r} in the run, {value!r} now"
         for key, value in current.items()
-        if saved.get(key) != value
+        if not _same(key, saved.get(key), value)
     ]
+
+
+def _same(key: str, old: Any, new: Any) -> bool:
+    if old == new:
+        return True
+    if key in ("model_fn", "metric") and isinstance(old, str) and isinstance(new, str):
+        (old_module, _, old_name), (new_module, _, new_name) = (
+            old.rpartition(":"),
+            new.rpartition(":"),
+        )
+        return old_name == new_name and "__main__" in (old_module, new_module)
+    return False
