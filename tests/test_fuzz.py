@@ -9,14 +9,18 @@ write nothing. The case counts per group are in the fault table's notes.
 from __future__ import annotations
 
 import json
+import math
 import os
+import re
 import sys
 import tomllib
 from pathlib import Path
 
+import numpy as np
 import pytest
 
 from filial import cli
+from filial.errors import InputError
 from filial.recipe import (
     MAX_NESTING,
     FactoryError,
@@ -395,3 +399,215 @@ def test_call_factory_passes_interrupts_through_and_names_the_section():
     assert info.value.key == "model.factory" and isinstance(info.value.error, IndexError)
     assert "lambda width: [][width]" in info.value.user_traceback
     assert call_factory("model", "m:f", lambda width: width * 2, {"width": 3}) == 6
+
+
+# -- 3. the shipped factories check their own arguments -----------------------------------------
+
+HIDDEN = [
+    ([-1], "model.hidden[0] should be an integer >= 1"),
+    ([0], "model.hidden[0] should be an integer >= 1"),
+    ([32, 0], "model.hidden[1] should be an integer >= 1"),
+    ([32.0], "model.hidden[0] should be an integer >= 1"),
+    ([1.5], "model.hidden[0] should be an integer >= 1"),
+    (["32"], "model.hidden[0] should be an integer >= 1"),
+    ([True], "model.hidden[0] should be an integer >= 1"),
+    ([[32]], "model.hidden[0] should be an integer >= 1"),
+    (32, "model.hidden should be a list of integers >= 1 (e.g. [32])"),
+    ("32", "model.hidden should be a list of integers >= 1"),
+    ({}, "model.hidden should be a list of integers >= 1"),
+    (None, "model.hidden should be a list of integers >= 1"),
+    ([1_000_000_000_000], "would have 75,000,000,000,010 parameters"),
+    ([100_000, 100_000], "would have 10,007,600,010 parameters"),
+    ([1] * 1001, "model.hidden should list at most 1,000 values"),
+]
+
+
+@pytest.mark.parametrize("hidden, words", HIDDEN)
+def test_mlp_widths_are_checked_before_anything_is_allocated(hidden, words):
+    from filial import demo
+
+    with pytest.raises(InputError, match=re.escape(words)):
+        demo.mlp(hidden=hidden)
+    plain = words.replace("model.", "")
+    with pytest.raises(InputError, match=re.escape(plain)):
+        demo.MLP(hidden=hidden)
+
+
+@pytest.mark.parametrize(
+    "inputs, words",
+    [
+        (0, "model.inputs should be an integer >= 1"),
+        (-1, "model.inputs should be an integer >= 1"),
+        (64.0, "model.inputs should be an integer >= 1"),
+        (True, "model.inputs should be an integer >= 1"),
+        (10**12, "an MLP 1000000000000 -> 32 -> 10 would have"),
+    ],
+)
+def test_mlp_inputs_are_checked(inputs, words):
+    from filial import demo
+
+    with pytest.raises(InputError, match=re.escape(words)):
+        demo.mlp(hidden=[32], inputs=inputs)
+
+
+def test_the_parameter_bound_is_exact_and_numpy_integers_are_welcome():
+    from filial import demo
+    from filial._checks import MAX_PARAMETERS
+
+    # 64 -> w -> 10 has 65 w + 10 (w + 1) parameters (weights and biases of two nn.Linear).
+    widest = (MAX_PARAMETERS - 10) // 75
+    demo.MLP(hidden=[widest])  # checked only: the factory builds nothing until called
+    with pytest.raises(InputError, match="parameters"):
+        demo.MLP(hidden=[widest + 1])
+    model = demo.mlp(hidden=[np.int64(8), np.int32(4)])
+    shapes = [(8, 64), (8,), (4, 8), (4,), (10, 4), (10,)]
+    assert [tuple(p.shape) for p in model.parameters()] == shapes
+    assert sum(p.numel() for p in model.parameters()) == 65 * 8 + 9 * 4 + 5 * 10
+    assert demo.mlp(hidden=[]).__len__() == 1  # no hidden layer: one linear map
+
+
+@pytest.mark.parametrize(
+    "channels, words",
+    [
+        ([16], "model.channels should be a list of 2 integers in 1..4,096"),
+        ([16, 32, 64], "model.channels should be a list of 2 integers"),
+        ([0, 32], "model.channels[0] should be an integer in 1..4,096"),
+        ([16, 4097], "model.channels[1] should be an integer in 1..4,096"),
+        ([16.0, 32], "model.channels[0] should be an integer"),
+        (16, "model.channels should be a list of 2 integers"),
+    ],
+)
+def test_cnn_channels_are_checked(channels, words):
+    from filial import demo
+
+    with pytest.raises(InputError, match=re.escape(words)):
+        demo.cnn(channels=channels)
+    with pytest.raises(InputError, match=re.escape(words.replace("model.", ""))):
+        demo.CNN(channels=channels)
+
+
+ROOM = [
+    ("noise", -0.1, "data.noise should be a number in [0, 1)"),
+    ("noise", 1.0, "data.noise should be a number in [0, 1)"),
+    ("noise", math.inf, "data.noise should be a number in [0, 1)"),
+    ("noise", "0.3", "data.noise should be a number in [0, 1)"),
+    ("noise", True, "data.noise should be a number in [0, 1)"),
+    ("split_seed", -1, "data.split_seed should be an integer in 0..18,446,744,073,709,551,615"),
+    ("split_seed", 2**64, "data.split_seed should be an integer in 0.."),
+    ("split_seed", 1.5, "data.split_seed should be an integer"),
+    ("batch_size", 0, "data.batch_size should be an integer in 1..1,797"),
+    ("batch_size", -1, "data.batch_size should be an integer in 1..1,797"),
+    ("batch_size", 1798, "data.batch_size should be an integer in 1..1,797"),
+    ("batch_size", 10**12, "data.batch_size should be an integer in 1..1,797"),
+    ("batch_size", 10**30, "data.batch_size should be an integer in 1..1,797"),
+    ("batch_size", 64.0, "data.batch_size should be an integer"),
+    ("batch_size", True, "data.batch_size should be an integer"),
+    ("train_size", 0, "data.train_size should be an integer in 1..1,795"),
+    ("train_size", 1796, "data.train_size should be an integer in 1..1,795"),
+    ("train_size", 10**12, "data.train_size should be an integer in 1..1,795"),
+    ("train_size", 300.5, "data.train_size should be an integer"),
+    ("heldout_size", 0, "data.heldout_size should be an integer in 1..796"),
+    ("heldout_size", 797, "data.heldout_size should be an integer in 1..796"),
+    ("heldout_size", True, "data.heldout_size should be an integer"),
+    ("images", 0, "data.images should be true or false"),
+    ("images", 1, "data.images should be true or false"),
+    ("images", "yes", "data.images should be true or false"),
+    ("images", [], "data.images should be true or false"),
+]
+
+
+@pytest.mark.parametrize("key, value, words", ROOM)
+def test_mail_room_arguments_are_checked_by_their_recipe_keys(key, value, words):
+    from filial.demo import mail_room_loaders
+
+    with pytest.raises(InputError, match=re.escape(words)):
+        mail_room_loaders(**{"train_size": 1000, "heldout_size": 300, key: value})
+
+
+def test_mail_room_bounds_are_accepted_at_the_edges():
+    from filial.demo import mail_room, mail_room_loaders, symmetric_noise
+
+    train, heldout, test = mail_room_loaders(train_size=1795, heldout_size=1, batch_size=1797)
+    assert len(train.dataset) == 1795 and len(heldout.dataset) == 1 and len(test.dataset) == 1
+    assert len(next(iter(train))[0]) == 1795  # one batch: the whole training set
+    with pytest.raises(InputError, match=r"^seed should be an integer"):
+        mail_room(seed=-1)  # the API's own names, without the recipe's prefix
+    with pytest.raises(InputError, match=r"rate should be a number in \[0, 1\)"):
+        symmetric_noise(np.zeros(3, dtype=np.int64), float("nan"), 10, seed=0)
+
+
+VISION_MODEL = [
+    ({"depth": 1208}, "depth should be 6n+2 for a whole n >= 1, at most 1202"),
+    ({"depth": 6 * 10**11 + 2}, "at most 1202"),
+    ({"classes": 0}, "classes should be an integer >= 1"),
+    ({"classes": -1}, "classes should be an integer >= 1"),
+    ({"classes": 10.0}, "classes should be an integer >= 1"),
+    ({"classes": True}, "classes should be an integer >= 1"),
+    ({"classes": "10"}, "classes should be an integer >= 1"),
+    ({"classes": 10**12}, "a ResNet-20 with 1,000,000,000,000 classes would have"),
+]
+
+
+@pytest.mark.parametrize("kwargs, words", VISION_MODEL)
+def test_cifar_resnet_arguments_are_checked(kwargs, words):
+    from filial.vision import cifar_resnet
+
+    with pytest.raises(InputError, match=re.escape(words)):
+        cifar_resnet(**kwargs)
+
+
+@pytest.mark.parametrize("depth, classes", [(8, 1), (20, 10), (32, 100), (56, 7)])
+def test_the_resnet_parameter_count_is_the_models_own(depth, classes):
+    """The bound is computed without building the model; here it is checked against the
+    built model's parameters (He et al. 2016, table 6, gives 0.27M for depth 20)."""
+    from filial.vision import cifar_resnet, resnet_parameters
+
+    model = cifar_resnet(depth, classes)
+    assert resnet_parameters(depth, classes) == sum(p.numel() for p in model.parameters())
+
+
+VISION_DATA = [
+    ("dataset", 5, "data.dataset should be 'cifar10' or 'cifar100'"),
+    ("dataset", ["cifar10"], "data.dataset should be 'cifar10' or 'cifar100'"),
+    ("source", None, "data.source should be 'folder' or 'fake'"),
+    ("root", 5, "data.root should be a folder name"),
+    ("root", "", "data.root should be a folder name"),
+    ("heldout_size", 50_000, "data.heldout_size should be an integer in 1..49,999"),
+    ("heldout_size", 1.5, "data.heldout_size should be an integer in 1..49,999"),
+    ("subset", -1, "data.subset should be an integer in 0..30,000"),
+    ("subset", 30_001, "data.subset should be an integer in 0..30,000"),
+    ("subset", True, "data.subset should be an integer"),
+    ("test_subset", 10_001, "data.test_subset should be an integer in 0..10,000"),
+    ("split_seed", 2**64, "data.split_seed should be an integer in 0.."),
+    ("batch_size", 0, "data.batch_size should be an integer in 1..50,000"),
+    ("batch_size", 50_001, "data.batch_size should be an integer in 1..50,000"),
+    ("batch_size", 10**12, "data.batch_size should be an integer in 1..50,000"),
+    ("workers", -1, "data.workers should be an integer in 0.."),
+    ("workers", 10**6, "each worker is a process"),
+    ("workers", 2.0, "data.workers should be an integer"),
+]
+
+
+@pytest.mark.parametrize("key, value, words", VISION_DATA)
+def test_cifar_loader_arguments_are_checked_before_any_data_are_read(key, value, words):
+    """No dataset files and no torchvision are needed to refuse these."""
+    from filial.vision import cifar_loaders
+
+    with pytest.raises(InputError, match=re.escape(words)):
+        cifar_loaders(**{"heldout_size": 20_000, "source": "fake", key: value})
+
+
+@pytest.mark.parametrize(
+    "override, words",
+    [
+        ("model.hidden=[-1]", "model.hidden[0] should be an integer >= 1"),
+        ("model.hidden=[1000000000000]", "parameters"),
+        ("model.hidden=[32.5]", "model.hidden[0] should be an integer"),
+        ("data.batch_size=1000000000000", "data.batch_size should be an integer in 1..1,797"),
+        ("data.images=1", "data.images should be true or false"),
+        ("data.split_seed=true", "data.split_seed should be an integer"),
+    ],
+)
+def test_shipped_factory_refusals_are_one_filial_line(tmp_path, capsys, recipe, override, words):
+    err = _refused(capsys, tmp_path, recipe, override)
+    assert words in err and "Traceback" not in err and len(err.strip().splitlines()) == 1
