@@ -12,12 +12,14 @@ import json
 import math
 import os
 import re
+import shutil
 import sys
 import tomllib
 from pathlib import Path
 
 import numpy as np
 import pytest
+import torch
 
 from filial import cli
 from filial.errors import InputError
@@ -611,3 +613,226 @@ def test_cifar_loader_arguments_are_checked_before_any_data_are_read(key, value,
 def test_shipped_factory_refusals_are_one_filial_line(tmp_path, capsys, recipe, override, words):
     err = _refused(capsys, tmp_path, recipe, override)
     assert words in err and "Traceback" not in err and len(err.strip().splitlines()) == 1
+
+
+# -- 4. training devices -------------------------------------------------------------------------
+
+# Backends torch.device parses but a stock torch build cannot train on here; mps and xpu are
+# skipped on a machine whose torch has them.
+MISSING_BACKENDS = ["mps", "xpu", "hpu", "xla", "ipu", "vulkan", "mtia", "lazy", "hip", "maia"]
+
+
+def _has(name: str) -> bool:
+    if name == "mps":
+        return torch.backends.mps.is_available()
+    if name == "xpu":
+        return hasattr(torch, "xpu") and torch.xpu.is_available()
+    return False
+
+
+@pytest.mark.parametrize("name", MISSING_BACKENDS)
+def test_a_device_this_torch_cannot_train_on_is_refused_before_anything_is_written(
+    tmp_path, capsys, recipe, name
+):
+    if _has(name):
+        pytest.skip(f"this torch has {name}")
+    err = _refused(capsys, tmp_path, recipe, f"training.device={json.dumps(name)}")
+    assert f"training.device = {name!r}, but this torch cannot train on it" in err
+
+
+def test_meta_is_refused_and_cuda_indices_are_checked(tmp_path, capsys, recipe, monkeypatch):
+    from filial.recipe import training_device
+
+    err = _refused(capsys, tmp_path, recipe, 'training.device="meta"')
+    assert "meta tensors have shapes but no values" in err
+    beyond = f"cuda:{torch.cuda.device_count()}"  # never a device, whatever the machine has
+    err = _refused(capsys, tmp_path, recipe, f"training.device={json.dumps(beyond)}")
+    assert f"training.device = {beyond!r}, but this torch sees" in err
+    # The index check itself, as on a machine with one GPU (no GPU is touched: it fails first).
+    monkeypatch.setattr(torch.cuda, "is_available", lambda: True)
+    monkeypatch.setattr(torch.cuda, "device_count", lambda: 1)
+    with pytest.raises(RecipeError, match=re.escape("sees 1 CUDA device(s) (cuda:0 to cuda:0)")):
+        training_device({"device": "cuda:7"})
+
+
+@pytest.mark.parametrize("name", ["gpu0", "CUDA", " cpu", "cpu ", "cuda:-1", "", "cuda:x"])
+def test_names_that_are_no_device_are_refused(tmp_path, capsys, recipe, name):
+    err = _refused(capsys, tmp_path, recipe, f"training.device={json.dumps(name)}")
+    assert f"training.device = {name!r} is not a device" in err
+
+
+def test_devices_torch_has_are_accepted():
+    from filial.recipe import training_device
+
+    assert training_device({"device": "cpu"}) == torch.device("cpu")
+    expected = "cuda" if torch.cuda.is_available() else "cpu"
+    assert training_device({"device": "auto"}).type == expected
+    if torch.cuda.is_available():
+        assert training_device({"device": "cuda:0"}) == torch.device("cuda:0")
+
+
+# -- 5. store sizes ------------------------------------------------------------------------------
+
+
+@pytest.mark.parametrize("views", [1025, 10**6, 10**12, 10**30])
+def test_views_past_the_recipe_bound_are_refused(tmp_path, capsys, recipe, views):
+    err = _refused(capsys, tmp_path, recipe, f"generations.views={views}")
+    assert "generations.views should be <= 1024" in err and "teacher pass" in err
+
+
+def test_the_largest_view_count_is_a_valid_recipe():
+    assert (
+        resolve(tomllib.loads(RECIPE), ["generations.views=1024"])["generations"]["views"] == 1024
+    )
+
+
+@pytest.mark.parametrize(
+    "samples, views, outputs, dtype, top_k",
+    [
+        (7, 1, 10, "float16", None),
+        (7, 3, 10, "float32", None),
+        (5, 2, 40, "float16", 4),
+        (5, 1, 40_000, "float32", 3),  # int32 class indices past 32,767 classes
+        (1, 1, 1, "float16", None),
+    ],
+)
+def test_store_bytes_are_the_bytes_the_store_writes(
+    tmp_path, samples, views, outputs, dtype, top_k
+):
+    """Reference: numpy's own ``nbytes`` of the arrays TargetStore.write put on disk."""
+    from filial.space import store_bytes
+    from filial.store import TargetStore
+
+    outputs_array = np.random.default_rng(0).normal(size=(samples, views, outputs))
+    store = TargetStore.write(
+        tmp_path / "store",
+        outputs_array,
+        dtype=dtype,
+        fingerprint="f",
+        teacher_sha256="t",
+        top_k=top_k,
+    )
+    written = store.array.nbytes + (store.index_array.nbytes if top_k else 0)
+    assert store_bytes(samples, views, outputs, dtype, top_k) == written
+
+
+@pytest.mark.parametrize(
+    "sizes, words",
+    [
+        ({"samples": 300, "views": 10**12, "outputs": 10}, "5.3 PiB"),
+        ({"samples": 10**9, "views": 1, "outputs": 1000}, "1.8 TiB"),
+        ({"samples": 5 * 10**7, "views": 4, "outputs": 10**6, "top_k": 10}, "11.2 GiB"),
+        ({"samples": 50_000, "views": 1, "outputs": 10**5, "dtype": "float32"}, "18.6 GiB"),
+        (
+            {"samples": 1000, "views": 1, "outputs": 1000, "stores": 10**6},
+            "1,000,000 such stores take 1.8 TiB",
+        ),
+    ],
+)
+def test_a_store_that_cannot_fit_is_refused_with_both_figures(tmp_path, monkeypatch, sizes, words):
+    from filial import space
+
+    usage = shutil.disk_usage(tmp_path)
+    monkeypatch.setattr(
+        space.shutil,
+        "disk_usage",
+        lambda path: usage._replace(free=2**30),  # 1 GiB free
+    )
+    with pytest.raises(space.StoreTooLarge) as info:
+        space.check_store_fits(tmp_path / "not" / "yet" / "made", **sizes)
+    message = str(info.value)
+    assert f"{tmp_path} has 1.0 GiB free" in message  # the nearest folder that exists
+    assert f"takes {words}" in message if "stores" not in sizes else words in message
+    assert "lower views" in message and "teacher_mode='online'" in message
+
+
+def test_a_store_that_fits_is_measured_against_the_real_free_space(tmp_path):
+    from filial import space
+
+    assert space.nearest_existing(tmp_path / "a" / "b") == tmp_path
+    assert space.free_bytes(tmp_path) == shutil.disk_usage(tmp_path).free
+    assert space.check_store_fits(tmp_path / "run", 1000, 1, 10) == 1000 * 10 * 2
+    with pytest.raises(ValueError, match="views should be an integer >= 0"):
+        space.store_bytes(10, 1.5, 10)
+
+
+# -- 7. metrics that return NaN or an infinity --------------------------------------------------
+
+
+def _one_generation(loaders, tmp_path, metric, generations=0):
+    from conftest import TinyNet
+
+    import filial
+
+    train, heldout, test = loaders
+    lineage = filial.Lineage(
+        TinyNet(),
+        train,
+        heldout,
+        run_dir=tmp_path / "run",
+        max_generations=generations,
+        metric=metric,
+        tensorboard=False,
+    )
+    for gen in lineage:
+        gen.finish(gen.model)
+    return lineage
+
+
+def nan_metric(outputs, labels):
+    return float("nan")
+
+
+@pytest.mark.parametrize(
+    "value",
+    [
+        float("nan"),
+        float("inf"),
+        float("-inf"),
+        np.float32("nan"),
+        np.float64("inf"),
+        torch.tensor(float("nan")),
+        torch.tensor([float("-inf")]),
+    ],
+    ids=["nan", "inf", "-inf", "numpy nan", "numpy inf", "tensor nan", "1-element tensor -inf"],
+)
+def test_a_non_finite_metric_is_refused_at_generation_0_naming_the_metric(loaders, tmp_path, value):
+    def my_metric(outputs, labels):
+        return value
+
+    with pytest.raises(InputError, match=r"metric .*my_metric returned (nan|inf|-inf) on 48"):
+        _one_generation(loaders, tmp_path, my_metric)
+    # Nothing of generation 0 was written: no record, no folder, no checkpoint.
+    state = json.loads((tmp_path / "run" / "lineage.json").read_text())
+    assert state["records"] == [] and not (tmp_path / "run" / "gen0").exists()
+
+
+def test_a_metric_that_turns_nan_later_keeps_the_finished_generations(loaders, tmp_path):
+    calls = []
+
+    def flaky(outputs, labels):
+        # Generation 0 calls it for held-out, train and the ensemble; generation 1's held-out
+        # call is the fourth, its train call the fifth.
+        calls.append(1)
+        return 0.5 if len(calls) <= 4 else float("nan")
+
+    with pytest.raises(InputError, match="flaky returned nan"):
+        _one_generation(loaders, tmp_path, flaky, generations=2)
+    state = json.loads((tmp_path / "run" / "lineage.json").read_text())
+    assert [r["generation"] for r in state["records"]] == [0]
+
+
+@pytest.mark.parametrize(
+    "value, words",
+    [
+        ("0.5", "returned the string '0.5'"),
+        (torch.zeros(3), "Tensor of shape (3,)"),
+        (None, "NoneType"),
+    ],
+)
+def test_a_metric_that_returns_no_number_is_a_type_error(loaders, tmp_path, value, words):
+    def odd(outputs, labels):
+        return value
+
+    with pytest.raises(TypeError, match=re.escape(words)):
+        _one_generation(loaders, tmp_path, odd)
