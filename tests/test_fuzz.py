@@ -836,3 +836,431 @@ def test_a_metric_that_returns_no_number_is_a_type_error(loaders, tmp_path, valu
 
     with pytest.raises(TypeError, match=re.escape(words)):
         _one_generation(loaders, tmp_path, odd)
+
+
+# -- 6. filial report on damaged or hand-edited run directories ---------------------------------
+
+FIXTURES = Path(__file__).resolve().parent / "fixtures" / "format1"
+
+
+def _edit_json(path: Path, change) -> None:
+    data = json.loads(path.read_text())
+    change(data)
+    path.write_text(json.dumps(data))
+
+
+def _state(seed: int, change):
+    return lambda run: _edit_json(run / f"seed{seed}" / "lineage.json", change)
+
+
+def _record(field, value=None, drop=False, index=1):
+    def change(state):
+        if drop:
+            del state["records"][index][field]
+        else:
+            state["records"][index][field] = value
+
+    return _state(0, change)
+
+
+def _decision(field, value):
+    return _state(0, lambda state: state["decision"].__setitem__(field, value))
+
+
+def _write(relative: str, text: str | bytes):
+    def damage(run: Path) -> None:
+        path = run / relative
+        if path.is_dir():
+            shutil.rmtree(path)
+        else:
+            path.unlink(missing_ok=True)
+        if isinstance(text, bytes):
+            path.write_bytes(text)
+        else:
+            path.write_text(text)
+
+    return damage
+
+
+def _make_directory(relative: str):
+    def damage(run: Path) -> None:
+        (run / relative).unlink()
+        (run / relative).mkdir()
+
+    return damage
+
+
+def _truncate(relative: str, keep: int):
+    def damage(run: Path) -> None:
+        path = run / relative
+        path.write_bytes(path.read_bytes()[:keep])
+
+    return damage
+
+
+def _recipe_text(old: str, new: str):
+    def damage(run: Path) -> None:
+        path = run / "recipe.toml"
+        text = path.read_text()
+        assert old in text
+        path.write_text(text.replace(old, new, 1))
+
+    return damage
+
+
+def _remove(relative: str):
+    return lambda run: shutil.rmtree(run / relative)
+
+
+def _swap_seeds(run: Path) -> None:
+    (run / "seed0").rename(run / "tmp")
+    (run / "seed1").rename(run / "seed0")
+    (run / "tmp").rename(run / "seed1")
+
+
+def _baseline(change):
+    return lambda run: _edit_json(run / "seed0" / "baseline" / "baseline.json", change)
+
+
+def _npy(relative: str, array: np.ndarray):
+    return lambda run: np.save(run / relative, array, allow_pickle=False)
+
+
+DAMAGE = {
+    # lineage.json as a whole
+    "lineage.json is []": (
+        _write("seed0/lineage.json", "[]"),
+        "seed0/lineage.json",
+        "holds a list",
+    ),
+    "lineage.json is {}": (_write("seed0/lineage.json", "{}"), "seed0/lineage.json", "format"),
+    "lineage.json is null": (_write("seed0/lineage.json", "null"), "seed0/lineage.json", "null"),
+    "lineage.json is a string": (
+        _write("seed0/lineage.json", '"x"'),
+        "seed0/lineage.json",
+        "holds a string",
+    ),
+    "lineage.json is a directory": (
+        _make_directory("seed0/lineage.json"),
+        "seed0/lineage.json",
+        "is a directory",
+    ),
+    "lineage.json is cut short": (
+        _truncate("seed0/lineage.json", 200),
+        "seed0/lineage.json",
+        "is not valid JSON",
+    ),
+    "lineage.json is not UTF-8": (
+        _write("seed0/lineage.json", b'{"format": "\xff"}'),
+        "seed0/lineage.json",
+        "cannot be read",
+    ),
+    "lineage.json of another format": (
+        _state(0, lambda s: s.__setitem__("format", "filial.lineage/9")),
+        "seed0/lineage.json",
+        "format should be 'filial.lineage/1'",
+    ),
+    "settings missing": (
+        _state(0, lambda s: s.pop("settings")),
+        "seed0/lineage.json",
+        "settings is missing",
+    ),
+    "settings.targets unknown": (
+        _state(0, lambda s: s["settings"].__setitem__("targets", "kl")),
+        "seed0/lineage.json",
+        "settings.targets should be 'ce' or 'l2'",
+    ),
+    "settings.seed not a number": (
+        _state(0, lambda s: s["settings"].__setitem__("seed", "0")),
+        "seed0/lineage.json",
+        "settings.seed should be an integer",
+    ),
+    "records not a list": (
+        _state(0, lambda s: s.__setitem__("records", {"0": {}})),
+        "seed0/lineage.json",
+        "records should be a list",
+    ),
+    "a record that is a number": (
+        _state(0, lambda s: s["records"].__setitem__(1, 5)),
+        "seed0/lineage.json",
+        "records[1] should be a JSON object",
+    ),
+    # one record
+    "a record without seconds": (
+        _record("seconds", drop=True),
+        "seed0/lineage.json",
+        "records[1].seconds is missing",
+    ),
+    "seconds: null": (
+        _record("seconds", None),
+        "seed0/lineage.json",
+        "records[1].seconds should be a number, but got null",
+    ),
+    "seconds as a string": (
+        _record("seconds", "0.4"),
+        "seed0/lineage.json",
+        "records[1].seconds should be a number",
+    ),
+    "negative seconds": (
+        _record("seconds", -1),
+        "seed0/lineage.json",
+        "records[1].seconds should be a finite number >= 0",
+    ),
+    "a record without checkpoint": (
+        _record("checkpoint", drop=True),
+        "seed0/lineage.json",
+        "records[1].checkpoint is missing",
+    ),
+    "checkpoint outside the lineage": (
+        _record("checkpoint", "../../etc/passwd"),
+        "seed0/lineage.json",
+        "records[1].checkpoint should be a path inside the lineage folder",
+    ),
+    "checkpoint as a number": (
+        _record("checkpoint", 1),
+        "seed0/lineage.json",
+        "records[1].checkpoint should be a string",
+    ),
+    "held-out as a string": (
+        _record("heldout", "0.5"),
+        "seed0/lineage.json",
+        "records[1].heldout should be a number or null",
+    ),
+    "a record without held-out": (
+        _record("heldout", drop=True, index=0),
+        "seed0/lineage.json",
+        "records[0].heldout is missing",
+    ),
+    "generations out of order": (
+        _record("generation", 5),
+        "seed0/lineage.json",
+        "records[1].generation should be 1 (its place in the list), but got 5",
+    ),
+    "diverged as a string": (
+        _record("diverged", "no"),
+        "seed0/lineage.json",
+        "records[1].diverged should be true or false",
+    ),
+    # the decision
+    "decision.best = 99": (
+        _decision("best", 99),
+        "seed0/lineage.json",
+        "decision.best should be a finished generation, 0..1, but got 99",
+    ),
+    "decision.best = -1": (_decision("best", -1), "seed0/lineage.json", "decision.best"),
+    "decision.best as a string": (
+        _decision("best", "0"),
+        "seed0/lineage.json",
+        "decision.best should be an integer or null",
+    ),
+    "decision.best names a diverged generation": (
+        _state(0, lambda s: s["records"][0].__setitem__("diverged", True)),
+        "seed0/lineage.json",
+        "decision.best should be a generation that did not diverge",
+    ),
+    "an unknown stop reason": (
+        _decision("reason", "bored"),
+        "seed0/lineage.json",
+        "decision.reason should be 'no-gain' or",
+    ),
+    "decision.stop as a string": (
+        _decision("stop", "yes"),
+        "seed0/lineage.json",
+        "decision.stop should be true or false",
+    ),
+    "a best without records": (
+        _state(0, lambda s: s.__setitem__("records", [])),
+        "seed0/lineage.json",
+        "null (there are no records)",
+    ),
+    # baseline.json
+    "baseline.json without epochs_matched": (
+        _baseline(lambda b: b.pop("epochs_matched")),
+        "seed0/baseline/baseline.json",
+        "epochs_matched is missing",
+    ),
+    "epochs_matched as a string": (
+        _baseline(lambda b: b.__setitem__("epochs_matched", "4")),
+        "seed0/baseline/baseline.json",
+        "epochs_matched should be an integer",
+    ),
+    "epochs_matched = 0": (
+        _baseline(lambda b: b.__setitem__("epochs_matched", 0)),
+        "seed0/baseline/baseline.json",
+        "epochs_matched should be an integer >= 1",
+    ),
+    "baseline.json is []": (
+        _write("seed0/baseline/baseline.json", "[]"),
+        "seed0/baseline/baseline.json",
+        "should be a JSON object, but is a list",
+    ),
+    "baseline.json is a directory": (
+        _make_directory("seed0/baseline/baseline.json"),
+        "seed0/baseline/baseline.json",
+        "is a directory",
+    ),
+    "baseline held-out as a string": (
+        _baseline(lambda b: b.__setitem__("heldout", "high")),
+        "seed0/baseline/baseline.json",
+        "heldout should be a number or null",
+    ),
+    # recipe.toml and the seed folders
+    "seeds = 5": (
+        _recipe_text("seeds = [0, 1]", "seeds = 5"),
+        "recipe.toml",
+        "run.seeds should be a non-empty list of distinct integers >= 0, but got 5",
+    ),
+    "seeds = []": (_recipe_text("seeds = [0, 1]", "seeds = []"), "recipe.toml", "run.seeds"),
+    'seeds = ["0"]': (_recipe_text("seeds = [0, 1]", 'seeds = ["0"]'), "recipe.toml", "run.seeds"),
+    "seeds = [0, 0]": (
+        _recipe_text("seeds = [0, 1]", "seeds = [0, 0]"),
+        "recipe.toml",
+        "run.seeds",
+    ),
+    "seeds = [99]": (
+        _recipe_text("seeds = [0, 1]", "seeds = [99]"),
+        "seed99/lineage.json",
+        "does not exist, but",
+    ),
+    "no [run] table": (
+        _recipe_text("[run]", "[runs]"),
+        "recipe.toml",
+        "[run] should be a table, but is missing",
+    ),
+    "recipe.toml is not TOML": (
+        _recipe_text("[run]", "[run"),
+        "recipe.toml",
+        "is not valid TOML",
+    ),
+    "recipe.toml without filial's first line": (
+        _recipe_text("# filial run recipe", "# my recipe"),
+        "recipe.toml",
+        "was not written by filial run",
+    ),
+    "recipe.toml is a directory": (
+        _make_directory("recipe.toml"),
+        "recipe.toml",
+        "is a directory",
+    ),
+    "one seed folder gone": (
+        _remove("seed1"),
+        "seed1/lineage.json",
+        "lists seed 1 (run.seeds = [0, 1])",
+    ),
+    "every seed folder gone": (
+        lambda run: (_remove("seed0")(run), _remove("seed1")(run)),
+        "seed0/lineage.json",
+        "does not exist",
+    ),
+    "seed folders swapped": (
+        _swap_seeds,
+        "seed0/lineage.json",
+        "settings.seed is 1, but the folder is seed0 of seed 0",
+    ),
+    # the arrays the gain interval reads
+    "heldout_labels.npy cut short": (
+        _truncate("seed0/heldout_labels.npy", 100),
+        "seed0/heldout_labels.npy",
+        "cannot be read as a numpy array",
+    ),
+    "heldout_labels.npy empty": (
+        _truncate("seed0/heldout_labels.npy", 0),
+        "seed0/heldout_labels.npy",
+        "cannot be read as a numpy array",
+    ),
+    "heldout_labels.npy gone": (
+        lambda run: (run / "seed0" / "heldout_labels.npy").unlink(),
+        "seed0/heldout_labels.npy",
+        "does not exist",
+    ),
+    "gen0/heldout.npy cut short": (
+        _truncate("seed1/gen0/heldout.npy", 1000),
+        "seed1/gen0/heldout.npy",
+        "cannot be read as a numpy array",
+    ),
+    "gen0/heldout.npy of other rows": (
+        _npy("seed1/gen0/heldout.npy", np.zeros((7, 10), dtype=np.float32)),
+        "seed1/gen0/heldout.npy",
+        "holds 7 held-out outputs",
+    ),
+    "the kept generation's heldout.npy of another width": (
+        lambda run: (
+            _state(1, lambda s: s["decision"].__setitem__("best", 1))(run),
+            _npy("seed1/gen1/heldout.npy", np.zeros((300, 5), dtype=np.float32))(run),
+        ),
+        "seed1/gen1/heldout.npy",
+        "holds outputs of shape (300, 5)",
+    ),
+    "heldout_labels.npy of other rows": (
+        _npy("seed1/heldout_labels.npy", np.zeros(7, dtype=np.int64)),
+        "seed1/heldout_labels.npy",
+        "holds labels of shape (7,)",
+    ),
+    "heldout.npy holding text": (
+        _write("seed1/gen0/heldout.npy", "not numpy"),
+        "seed1/gen0/heldout.npy",
+        "cannot be read as a numpy array",
+    ),
+    "heldout.npy holding an object array": (
+        lambda run: np.save(run / "seed1/gen0/heldout.npy", np.array([{}], dtype=object)),
+        "seed1/gen0/heldout.npy",
+        "cannot be read as a numpy array",
+    ),
+}
+
+
+@pytest.fixture
+def recipe_run(tmp_path):
+    """A run directory written by `filial run` (two seeds, a matched baseline each)."""
+    run = tmp_path / "recipe_run"
+    shutil.copytree(FIXTURES / "recipe_run", run)
+    return run
+
+
+def _report_refuses(capsys, run: Path, file: str, words: str) -> None:
+    code = cli.main(["report", str(run)])
+    captured = capsys.readouterr()
+    assert code == 2, captured.out
+    lines = captured.err.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith("filial: "), captured.err
+    assert file in lines[0] and words in lines[0], lines[0]
+    assert "lineage(s)" not in captured.out
+
+
+def test_the_undamaged_fixture_reports(capsys, recipe_run):
+    assert cli.main(["report", str(recipe_run)]) == 0
+    assert "2 lineage(s)" in capsys.readouterr().out
+    assert cli.main(["report", str(recipe_run), "--json"]) == 0
+    assert [x["seed"] for x in json.loads(capsys.readouterr().out)["lineages"]] == [0, 1]
+
+
+@pytest.mark.parametrize("kind", list(DAMAGE))
+def test_report_on_a_damaged_run_names_the_file_and_field_and_exits_2(capsys, recipe_run, kind):
+    damage, file, words = DAMAGE[kind]
+    damage(recipe_run)
+    _report_refuses(capsys, recipe_run, file, words)
+
+
+@pytest.mark.parametrize(
+    "damage, words",
+    [
+        (_write("lineage.json", "[]"), "holds a list"),
+        (_write("lineage.json", "{}"), "format should be"),
+        (_make_directory("lineage.json"), "is a directory"),
+        (_truncate("heldout_labels.npy", 50), "heldout_labels.npy cannot be read"),
+    ],
+)
+def test_report_on_a_damaged_plain_lineage(tmp_path, capsys, damage, words):
+    run = tmp_path / "partial"
+    shutil.copytree(FIXTURES / "partial", run)
+    assert cli.main(["report", str(run)]) == 0
+    capsys.readouterr()
+    damage(run)
+    _report_refuses(capsys, run, str(run), words)
+
+
+def test_report_on_what_is_no_run_directory(tmp_path, capsys):
+    _report_refuses(capsys, tmp_path / "absent", "absent", "does not exist")
+    (tmp_path / "file").write_text("x")
+    _report_refuses(capsys, tmp_path / "file", "file", "is not a directory")
+    _report_refuses(capsys, tmp_path, str(tmp_path), "is not a filial run directory")
