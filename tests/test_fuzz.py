@@ -750,6 +750,9 @@ def test_a_store_that_fits_is_measured_against_the_real_free_space(tmp_path):
     from filial import space
 
     assert space.nearest_existing(tmp_path / "a" / "b") == tmp_path
+    assert space.nearest_existing(tmp_path / ("x" * 300) / "run") == tmp_path  # ENAMETOOLONG
+    (tmp_path / "afile").write_text("")
+    assert space.nearest_existing(tmp_path / "afile" / "run") == tmp_path / "afile"
     assert space.free_bytes(tmp_path) == shutil.disk_usage(tmp_path).free
     assert space.check_store_fits(tmp_path / "run", 1000, 1, 10) == 1000 * 10 * 2
     with pytest.raises(ValueError, match="views should be an integer >= 0"):

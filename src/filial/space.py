@@ -47,9 +47,12 @@ def store_bytes(
 
 
 def nearest_existing(path: str | os.PathLike[str]) -> Path:
-    """``path`` or its nearest parent that exists (a run directory is made later)."""
+    """``path`` or its nearest parent that exists (a run directory is made later).
+
+    ``os.path.exists`` is False for a name too long or a path through a file, where
+    ``Path.exists`` raises, so such a path still finds the folder above it."""
     current = Path(path).absolute()
-    while not current.exists() and current != current.parent:
+    while not os.path.exists(current) and current != current.parent:
         current = current.parent
     return current
 
