@@ -101,18 +101,11 @@ def plan(recipe_path: str, overrides: Sequence[str], run_dir: str | None) -> Pla
     data_factory, data_kwargs = recipe.factory("data")
     model_factory, model_kwargs = recipe.factory("model")
     spec = recipe["data"]["factory"]
-    try:
-        loaders = data_factory(**data_kwargs)
-    except (OSError, ImportError, ValueError, TypeError, KeyError) as exc:
-        raise recipes.RecipeError(f"data.factory {spec!r} failed: {exc}") from exc
+    # Whatever a factory raises names its recipe key (exit 2); a bug keeps its traceback.
+    loaders = recipes.call_factory("data", spec, data_factory, data_kwargs)
     train, heldout, test = _loaders(loaders, spec)
     model_fn = functools.partial(model_factory, **model_kwargs)
-    try:
-        probe = model_fn()
-    except (ImportError, ValueError, TypeError, KeyError) as exc:
-        raise recipes.RecipeError(
-            f"model.factory {recipe['model']['factory']!r} failed: {exc}"
-        ) from exc
+    probe = recipes.call_factory("model", recipe["model"]["factory"], model_fn)
     if not isinstance(probe, nn.Module):
         raise recipes.RecipeError(
             f"model.factory {recipe['model']['factory']!r} should return a fresh nn.Module, but "

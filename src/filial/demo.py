@@ -14,17 +14,28 @@ Needs the ``demo`` extra (scikit-learn).
 from __future__ import annotations
 
 import argparse
+import itertools
 import logging
 import sys
 from collections.abc import Sequence
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 import torch
 from torch import nn
 from torch.utils.data import DataLoader, TensorDataset
 
+from . import _checks
+
 CLASSES = 10
+DIGITS = 1797  # images in scikit-learn's digits
+# Deeper plain MLPs (no residual connections) do not train well; common practice, and a list
+# of more layers is a typo rather than a model.
+MAX_LAYERS = 1000
+# The CNN's activations grow with channels x 64 pixels per image; 4096 is twice the widest
+# layer of the ImageNet ResNets (2048), far past anything 8x8 digits can use.
+MAX_CHANNELS = 4096
 
 
 def _load_digits() -> tuple[np.ndarray, np.ndarray]:
@@ -47,8 +58,7 @@ def symmetric_noise(
     >>> bool((noisy[flipped] != 0).all()), bool(0.25 < flipped.mean() < 0.35)
     (True, True)
     """
-    if not 0.0 <= rate < 1.0:
-        raise ValueError(f"noise rate should lie in [0, 1), but got {rate!r}")
+    rate = _checks.fraction(rate, "rate")
     rng = np.random.default_rng(seed)
     flipped = rng.random(len(labels)) < rate
     shift = rng.integers(1, classes, size=len(labels))  # 1..classes-1: never the true class
@@ -90,12 +100,8 @@ def mail_room(
     ``seed`` fixes both the split and the noise. ``images=True`` gives inputs of shape (1, 8, 8)
     for the CNN; otherwise flat vectors of 64 values in [0, 1].
     """
+    _check_room(noise, seed, train_size, heldout_size, images, prefix="")
     x, y = _load_digits()
-    if train_size < 1 or heldout_size < 1 or train_size + heldout_size >= len(x):
-        raise ValueError(
-            f"train_size + heldout_size must leave test images out of {len(x)}, but got "
-            f"train_size={train_size}, heldout_size={heldout_size}"
-        )
     order = np.random.default_rng(seed).permutation(len(x))
     x, y = x[order], y[order]
     if images:
@@ -112,12 +118,44 @@ def mail_room(
     )
 
 
+def _check_room(
+    noise: float, seed: int, train_size: int, heldout_size: int, images: bool, prefix: str
+) -> None:
+    """The mail room's arguments, named ``prefix + name`` (``data.`` for the recipe factory,
+    whose ``split_seed`` is the room's ``seed``)."""
+    _checks.fraction(noise, f"{prefix}noise")
+    _checks.integer(seed, f"{prefix}split_seed" if prefix else "seed", 0, _checks.MAX_SEED)
+    _checks.flag(images, f"{prefix}images")
+    room = f"the digits have {DIGITS:,} images, and the test set keeps at least one"
+    train = _checks.integer(train_size, f"{prefix}train_size", 1, DIGITS - 2, room)
+    _checks.integer(heldout_size, f"{prefix}heldout_size", 1, DIGITS - 1 - train, room)
+
+
+def _check_mlp(hidden: Any, inputs: Any, prefix: str) -> tuple[tuple[int, ...], int]:
+    hidden = _checks.integers(
+        hidden, f"{prefix}hidden", 1, max_length=MAX_LAYERS, why="deeper plain MLPs do not train"
+    )
+    inputs = _checks.integer(inputs, f"{prefix}inputs", 1)
+    widths = [inputs, *hidden, CLASSES]
+    count = sum((a + 1) * b for a, b in itertools.pairwise(widths))  # weights and biases
+    _checks.parameters(count, f"an MLP {' -> '.join(str(w) for w in widths)}")
+    return hidden, inputs
+
+
+def _check_cnn(channels: Any, prefix: str) -> tuple[int, int]:
+    c1, c2 = _checks.integers(channels, f"{prefix}channels", 1, MAX_CHANNELS, length=2)
+    return c1, c2
+
+
 class MLP:
-    """Factory of fresh MLPs ``64 -> hidden... -> 10`` (a picklable ``model_fn``)."""
+    """Factory of fresh MLPs ``64 -> hidden... -> 10`` (a picklable ``model_fn``).
+
+    Widths are checked when the factory is made: positive integers, at most
+    :data:`MAX_LAYERS` hidden layers and :data:`filial._checks.MAX_PARAMETERS` parameters.
+    """
 
     def __init__(self, hidden: Sequence[int] = (256, 256), inputs: int = 64) -> None:
-        self.hidden = tuple(int(h) for h in hidden)
-        self.inputs = int(inputs)
+        self.hidden, self.inputs = _check_mlp(hidden, inputs, prefix="")
 
     def __call__(self) -> nn.Module:
         layers: list[nn.Module] = []
@@ -133,7 +171,7 @@ class CNN:
     """Factory of fresh small CNNs for 1x8x8 digit images (a picklable ``model_fn``)."""
 
     def __init__(self, channels: Sequence[int] = (16, 32)) -> None:
-        self.channels = tuple(int(c) for c in channels)
+        self.channels = _check_cnn(channels, prefix="")
 
     def __call__(self) -> nn.Module:
         c1, c2 = self.channels
@@ -156,19 +194,32 @@ def mail_room_loaders(
     heldout_size: int = 300,
     images: bool = False,
 ) -> tuple[DataLoader, DataLoader, DataLoader]:
-    """Recipe data factory: the mail room's (train, held-out, test) loaders."""
+    """Recipe data factory: the mail room's (train, held-out, test) loaders.
+
+    Arguments are checked by their recipe keys (``data.batch_size`` ...) before any data are
+    loaded; ``batch_size`` is at most the 1,797 digits (a batch of the whole training set).
+    """
+    _check_room(noise, split_seed, train_size, heldout_size, images, prefix="data.")
+    _checks.integer(
+        batch_size,
+        "data.batch_size",
+        1,
+        DIGITS,
+        f"a larger batch than the {DIGITS:,} digits is the whole training set anyway",
+    )
     room = mail_room(noise, split_seed, train_size, heldout_size, images)
     return room.loaders(batch_size=batch_size, seed=split_seed)
 
 
 def mlp(hidden: Sequence[int] = (256, 256), inputs: int = 64) -> nn.Module:
-    """Recipe model factory: a fresh MLP for flat digits."""
+    """Recipe model factory: a fresh MLP for flat digits (``model.hidden`` widths)."""
+    hidden, inputs = _check_mlp(hidden, inputs, prefix="model.")
     return MLP(hidden, inputs)()
 
 
 def cnn(channels: Sequence[int] = (16, 32)) -> nn.Module:
     """Recipe model factory: a fresh small CNN for 1x8x8 digits (use ``images = true``)."""
-    return CNN(channels)()
+    return CNN(_check_cnn(channels, prefix="model."))()
 
 
 def main(argv: Sequence[str] | None = None) -> int:

@@ -11,9 +11,12 @@ mean squared error for floating-point labels.
 
 from __future__ import annotations
 
+import math
 from collections.abc import Callable
 
 import torch
+
+from .errors import InputError
 
 Metric = Callable[[torch.Tensor, torch.Tensor], float]
 
@@ -43,7 +46,23 @@ def metric_name(metric: Metric | None) -> str:
 
 class _FloatMetric:
     """A metric whose result is checked and turned into a Python float (numpy scalars, 0-d
-    tensors), so records stay JSON and the stop rule compares plain numbers."""
+    tensors), so records stay JSON and the stop rule compares plain numbers.
+
+    A value that is not a number is a TypeError; NaN or an infinity is an
+    :class:`~filial.errors.InputError` naming the metric. Filial scores only finite outputs
+    (a generation whose outputs are not finite is recorded as diverged without being scored),
+    so a non-finite value is the metric's own: with it no generation could ever be best, and
+    the run would go on to ``max_generations`` for nothing. It is raised the first time the
+    metric is called, in generation 0's ``finish``, before anything of that generation is
+    written.
+
+    >>> import torch
+    >>> scored = as_float_metric(lambda outputs, labels: float("nan"), "my_auc")
+    >>> scored(torch.zeros(3, 2), torch.zeros(3))  # doctest: +ELLIPSIS
+    Traceback (most recent call last):
+    ...
+    filial.errors.InputError: metric my_auc returned nan on 3 samples; a metric should return ...
+    """
 
     def __init__(self, metric: Metric, name: str) -> None:
         self.metric = metric
@@ -51,13 +70,27 @@ class _FloatMetric:
 
     def __call__(self, outputs: torch.Tensor, labels: torch.Tensor) -> float:
         value = self.metric(outputs, labels)
+        if isinstance(value, (str, bytes)):  # float("0.5") would take a string silently
+            raise TypeError(
+                f"metric {self.name} must return a number (higher is better), but returned "
+                f"the string {value!r}"
+            )
         try:
-            return float(value)
-        except (TypeError, ValueError) as exc:
+            number = float(value)
+        except (TypeError, ValueError, RuntimeError) as exc:  # RuntimeError: a tensor of many
             raise TypeError(
                 f"metric {self.name} must return a number (higher is better), but returned "
                 f"{type(value).__name__}"
+                + (f" of shape {tuple(value.shape)}" if isinstance(value, torch.Tensor) else "")
             ) from exc
+        if not math.isfinite(number):
+            raise InputError(
+                f"metric {self.name} returned {number} on {len(outputs)} samples; a metric "
+                "should return a finite number (higher is better), or no generation could be "
+                "compared with another. If it is undefined on some sets (AUC with one class "
+                "present, say), return a finite value for that case"
+            )
+        return number
 
 
 def as_float_metric(metric: Metric, name: str) -> Metric:

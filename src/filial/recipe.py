@@ -43,12 +43,16 @@ import json
 import math
 import os
 import re
+import stat
 import tomllib
-from collections.abc import Callable, Sequence
+import traceback
+import warnings
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, TypeVar
 
+from .errors import InputError
 from .losses import LOSS_KINDS
 from .store import STORE_DTYPES
 
@@ -71,6 +75,37 @@ class RecipeError(ValueError):
     """A recipe, an override or a factory is wrong; the message names the key."""
 
 
+class FactoryError(RecipeError):
+    """A recipe factory raised while it was imported or called.
+
+    ``str()`` is one line naming the recipe key and the factory, then the factory's own
+    traceback (the user needs it to fix their code); ``error`` is what it raised.
+    """
+
+    def __init__(self, key: str, spec: str, error: BaseException, importing: str = "") -> None:
+        self.key, self.spec, self.error = key, spec, error
+        self.user_traceback = _user_traceback(error)
+        what = f": importing module {importing!r}" if importing else ""
+        super().__init__(
+            f"{key} = {spec!r}{what} raised {type(error).__name__}: {error}\n"
+            f"The factory's traceback:\n{self.user_traceback}"
+        )
+
+
+def _user_traceback(error: BaseException) -> str:
+    """The traceback of ``error`` without filial's calling frame and the import machinery's
+    frames, so it starts in the user's code (a SyntaxError keeps its file, line and caret)."""
+    summary = traceback.TracebackException.from_exception(error)
+    kept = [
+        frame
+        for frame in list(summary.stack)[1:]  # the first is call_factory / import_factory
+        if not frame.filename.startswith("<frozen importlib")
+        and Path(frame.filename).parent.name != "importlib"
+    ]
+    summary.stack = traceback.StackSummary.from_list(kept)
+    return "".join(summary.format()).rstrip("\n")
+
+
 @dataclass(frozen=True)
 class Field:
     kind: str  # "int", "float", "str", "bool", "seeds", or "choice"
@@ -78,6 +113,19 @@ class Field:
     choices: tuple[str, ...] = ()
     minimum: float | None = None
     help: str = ""
+    maximum: float | None = None
+    why_maximum: str = ""
+
+
+# Each view is one more teacher pass over the training set per generation and one more row per
+# sample in the store; caching more than a thousand augmented views is never worth that (a
+# fresh augmentation per step is teacher = "online"). The exact check, once the data size and
+# the output width are known, is filial.space.check_store_fits.
+MAX_VIEWS = 1024
+# No factory argument needs deeper values; bounding them keeps copying, saving and comparing a
+# recipe (all recursive) far from Python's recursion limit, which tomllib itself reaches at
+# about 500 nested lists.
+MAX_NESTING = 32
 
 
 _SCHEMA: dict[str, dict[str, Field]] = {
@@ -107,7 +155,15 @@ _SCHEMA: dict[str, dict[str, Field]] = {
         "max": Field("int", 6, minimum=0),
         "patience": Field("int", 2, minimum=1),
         "min_gain": Field("float", 0.0, minimum=0.0),
-        "views": Field("int", 1, minimum=1),
+        "views": Field(
+            "int",
+            1,
+            minimum=1,
+            maximum=MAX_VIEWS,
+            why_maximum="each view is one more teacher pass over the training set and one more "
+            "stored target per sample; for a fresh augmentation at every step use teacher = "
+            "'online'",
+        ),
         "store_dtype": Field("choice", "float16", STORE_DTYPES),
         "top_k": Field("int", 0, minimum=0, help="0: every output; k: the k largest (ce only)"),
         "teacher": Field("choice", "cached", ("cached", "online")),
@@ -152,7 +208,84 @@ def _check_field(name: str, field: Field, value: Any) -> Any:
             raise RecipeError(f"{name} lists a seed twice: {value!r}")
     if field.minimum is not None and isinstance(value, (int, float)) and value < field.minimum:
         raise RecipeError(f"{name} should be >= {field.minimum:g}, but got {value!r}")
+    if field.maximum is not None and isinstance(value, (int, float)) and value > field.maximum:
+        raise RecipeError(
+            f"{name} should be <= {field.maximum:g} ({field.why_maximum}), but got {value!r}"
+        )
     return value
+
+
+def _key_path(path: str, key: Any) -> str:
+    return (
+        f"{path}.{key}"
+        if isinstance(key, str) and _BARE_KEY.fullmatch(key)
+        else (f"{path}[{json.dumps(key, ensure_ascii=False)}]")
+    )
+
+
+def check_values(name: str, value: Any) -> None:
+    """Refuse what a recipe cannot hold, naming the key: values nested deeper than
+    :data:`MAX_NESTING`, NaN (it never equals itself, so a saved recipe would never match on
+    resume) and types TOML has but a recipe does not keep (dates and times).
+
+    The walk keeps its own stack, so a value of any depth is refused without recursion.
+
+    >>> check_values("data.noise", float("nan"))  # doctest: +ELLIPSIS
+    Traceback (most recent call last):
+    ...
+    filial.recipe.RecipeError: data.noise = nan: a recipe value should be a number that equals ...
+    """
+    stack: list[tuple[str, Any, int]] = [(name, value, 0)]
+    while stack:
+        path, item, depth = stack.pop()  # depth: how many lists or tables hold ``item``
+        if isinstance(item, (dict, list)) and depth >= MAX_NESTING:
+            raise RecipeError(
+                f"{name} nests lists or tables more than {MAX_NESTING} levels deep; a recipe "
+                f"value may nest at most {MAX_NESTING} levels"
+            )
+        if isinstance(item, float) and math.isnan(item):
+            raise RecipeError(
+                f"{path} = nan: a recipe value should be a number that equals itself (NaN never "
+                "does, so the saved recipe would never match on resume), but got nan"
+            )
+        if isinstance(item, dict):
+            stack.extend((_key_path(path, k), v, depth + 1) for k, v in item.items())
+        elif isinstance(item, list):
+            stack.extend((f"{path}[{i}]", v, depth + 1) for i, v in enumerate(item))
+        elif not isinstance(item, (str, int, float)):  # bool is an int
+            raise RecipeError(
+                f"{path}: a recipe value must be a string, number, boolean, list or table, but "
+                f"got {_describe(item)}"
+            )
+
+
+def _deeply_nested_key(text: str) -> tuple[int, str] | None:
+    """(line, section.key) of the first value of a TOML text that nests deeper than
+    :data:`MAX_NESTING`, found by counting brackets outside strings and comments.
+
+    Note: only for the message after tomllib gave up with a RecursionError (it does not say
+    where); multi-line strings holding brackets can mislead it, and then the message names no
+    key.
+    """
+    section, key, depth = "", "", 0
+    strings = re.compile(r'"(?:[^"\\\n]|\\.)*"|\'[^\'\n]*\'|#.*')
+    for number, line in enumerate(text.splitlines(), 1):
+        code = strings.sub("", line)
+        if depth == 0:
+            header = re.fullmatch(r"\s*\[\[?\s*([^\[\]]+?)\s*\]\]?\s*", code)
+            if header:
+                section = header.group(1)
+                continue
+            assignment = re.match(r"\s*([^=\[{]+?)\s*=(.*)", code)
+            if not assignment:
+                continue
+            key, code = assignment.groups()
+        for char in code:
+            depth += (char in "[{") - (char in "]}")
+            if depth > MAX_NESTING:
+                return number, f"{section}.{key}" if section else key
+        depth = max(depth, 0)
+    return None
 
 
 def parse_override(text: str) -> tuple[str, str, Any]:
@@ -165,24 +298,95 @@ def parse_override(text: str) -> tuple[str, str, Any]:
         raise RecipeError(
             f"--set expects section.key=value (e.g. training.epochs=10), got {text!r}"
         )
+    name = ".".join(parts)
     try:
-        value = tomllib.loads(f"value = {raw}")["value"]
+        parsed: dict[str, Any] | None = tomllib.loads(f"value = {raw}")
     except tomllib.TOMLDecodeError:
-        value = raw
+        parsed = None
+    except RecursionError:
+        raise RecipeError(
+            f"--set {name}: the value nests lists or tables far more than {MAX_NESTING} levels "
+            "deep; a recipe value may nest at most that deep"
+        ) from None
+    if parsed is None:
+        if "\n" in raw or "\r" in raw:
+            raise RecipeError(
+                f"--set {name}: the value spans several lines but is not one TOML value; give "
+                f"one --set per key, and a string with a line break as a TOML string "
+                f"(--set '{name}=\"first\\nsecond\"')"
+            )
+        value: Any = raw
+    else:
+        extra = [k for k in parsed if k != "value"]
+        if extra:
+            raise RecipeError(
+                f"--set {name}: the value carries more than one TOML line (it also sets "
+                f"{', '.join(repr(k) for k in extra)}); give one --set per key"
+            )
+        value = parsed["value"]
+    check_values(name, value)
     return parts[0], parts[1], value
 
 
+_EXAMPLES = {"data": "filial.demo:mail_room_loaders", "model": "filial.demo:mlp"}
+
+
+def check_factory_spec(spec: Any, key: str) -> tuple[str, str]:
+    """``(module, attribute)`` of a factory spec ``"package.module:function"``, or a
+    :class:`RecipeError` that says what the spec must look like.
+
+    >>> check_factory_spec("filial.demo:mail_room_loaders", "data.factory")
+    ('filial.demo', 'mail_room_loaders')
+    >>> check_factory_spec(".demo:mlp", "model.factory")  # doctest: +ELLIPSIS
+    Traceback (most recent call last):
+    ...
+    filial.recipe.RecipeError: model.factory should be ... the module '.demo' is relative; ...
+    """
+    example = _EXAMPLES.get(key.split(".")[0], "package.module:function")
+    shape = (
+        f"{key} should be 'package.module:function' (an absolute module path, one ':', then a "
+        f"function of that module, e.g. {example!r}), but got {_describe(spec)}"
+    )
+    if not isinstance(spec, str):
+        raise RecipeError(shape)
+    shape = shape.removesuffix(f" ({type(spec).__name__})")
+    if spec.count(":") != 1:
+        raise RecipeError(f"{shape}: it has {spec.count(':') or 'no'} ':'")
+    module, attr = spec.split(":")
+    if not module:
+        raise RecipeError(f"{shape}: the module before ':' is empty")
+    if module.startswith("."):
+        raise RecipeError(
+            f"{shape}: the module {module!r} is relative; name it from its top-level package"
+        )
+    if not attr:
+        raise RecipeError(f"{shape}: the function after ':' is empty")
+    for what, dotted in (("module", module), ("function", attr)):
+        bad = [part for part in dotted.split(".") if not part.isidentifier()]
+        if bad:
+            part = f"{bad[0]!r} in" if bad[0] else "an empty part of"
+            raise RecipeError(
+                f"{shape}: {part} the {what} {dotted!r} is not a Python name (letters, digits "
+                "and '_', not starting with a digit; parts joined by single dots)"
+            )
+    return module, attr
+
+
 def import_factory(spec: Any, key: str) -> Callable[..., Any]:
-    """Import ``"package.module:function"`` (or a dotted attribute path after the colon)."""
-    if not isinstance(spec, str) or spec.count(":") != 1:
-        raise RecipeError(f"{key} should be 'package.module:function', but got {_describe(spec)}")
-    module_name, attr = spec.split(":")
+    """Import ``"package.module:function"`` (or a dotted attribute path after the colon).
+
+    A module that is not there is one line; a module that fails while it is imported (a
+    SyntaxError, an exception at import time) is a :class:`FactoryError` with its traceback.
+    """
+    module_name, attr = check_factory_spec(spec, key)
     try:
         target: Any = importlib.import_module(module_name)
     except ImportError as exc:
         raise RecipeError(
             f"{key} = {spec!r}: cannot import module {module_name!r} ({exc})"
         ) from exc
+    except Exception as exc:  # the user's module raised while it was imported
+        raise FactoryError(key, spec, exc, importing=module_name) from exc
     for part in attr.split("."):
         if not hasattr(target, part):
             raise RecipeError(f"{key} = {spec!r}: module {module_name!r} has no {attr!r}")
@@ -190,6 +394,37 @@ def import_factory(spec: Any, key: str) -> Callable[..., Any]:
     if not callable(target):
         raise RecipeError(f"{key} = {spec!r} is not callable")
     return target
+
+
+T = TypeVar("T")
+
+
+def call_factory(
+    section: str,
+    spec: str,
+    factory: Callable[..., T],
+    kwargs: Mapping[str, Any] | None = None,
+) -> T:
+    """``factory(**kwargs)`` for the recipe's ``[section]``; what it raises names the key.
+
+    An :class:`~filial.errors.InputError` or :class:`RecipeError` (the factory refused its
+    arguments, and said why) and an ImportError (a missing package) become a one-line
+    :class:`RecipeError`; anything else (a bug in the factory) a :class:`FactoryError` that
+    keeps the factory's traceback. KeyboardInterrupt and SystemExit pass through.
+
+    >>> try:
+    ...     call_factory("model", "mymodels:make", lambda: 1 / 0)
+    ... except FactoryError as exc:
+    ...     print(str(exc).splitlines()[0])
+    model.factory = 'mymodels:make' raised ZeroDivisionError: division by zero
+    """
+    key = f"{section}.factory"
+    try:
+        return factory(**(kwargs or {}))
+    except (InputError, RecipeError, ImportError) as exc:
+        raise RecipeError(f"{key} = {spec!r}: {exc}") from exc
+    except Exception as exc:
+        raise FactoryError(key, spec, exc) from exc
 
 
 def _check_kwargs(factory: Callable[..., Any], kwargs: dict[str, Any], section: str) -> None:
@@ -257,7 +492,8 @@ def _toml_key(key: str) -> str:
 
 def _toml_value(value: Any) -> str:
     """A TOML literal for a value tomllib can read back unchanged (JSON's string escapes are
-    TOML basic-string escapes; dates and other types are refused)."""
+    TOML basic-string escapes; dates and other types are refused, by name, in
+    :func:`check_values`)."""
     if isinstance(value, bool):
         return "true" if value else "false"
     if isinstance(value, (int, float)):
@@ -281,6 +517,10 @@ def resolve(
     raw: dict[str, Any], overrides: Sequence[str] = (), source: Path | None = None
 ) -> Recipe:
     """Check a parsed recipe, apply ``--set`` overrides, fill defaults; return a :class:`Recipe`."""
+    for section, given in raw.items():  # before anything recursive (deepcopy) touches them
+        if isinstance(given, dict):
+            for key, value in given.items():
+                check_values(f"{section}.{key}", value)
     raw = copy.deepcopy(raw)
     for text in overrides:
         section, key, value = parse_override(text)
@@ -334,26 +574,56 @@ def resolve(
         values["run"]["run_dir"] = os.path.join("runs", values["run"]["name"])
     recipe = Recipe(values, source)
     try:  # what is saved in the run directory must read back as the same recipe
-        same = tomllib.loads(recipe.to_toml()) == values
-    except tomllib.TOMLDecodeError:
-        same = False
-    if not same:
-        raise RecipeError("the recipe cannot be saved and read back unchanged")
+        back = tomllib.loads(recipe.to_toml())
+    except tomllib.TOMLDecodeError as exc:
+        raise RecipeError(f"the recipe cannot be saved as TOML and read back ({exc})") from exc
+    if back != values:
+        raise RecipeError(
+            "the recipe cannot be saved and read back unchanged: "
+            + "; ".join(differences(values, back))
+        )
     return recipe
 
 
 def load(path: str | os.PathLike[str], overrides: Sequence[str] = ()) -> Recipe:
     """Read and resolve the recipe file at ``path``."""
     path = Path(path)
-    if not path.is_file():
-        raise RecipeError(f"recipe file {path} does not exist")
+    check_regular_file(path, "recipe file")
     try:
-        raw = tomllib.loads(path.read_text(encoding="utf-8"))
+        text = path.read_text(encoding="utf-8")
+    except (OSError, UnicodeDecodeError) as exc:
+        raise RecipeError(f"recipe file {path} cannot be read: {exc}") from exc
+    try:
+        raw = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise RecipeError(f"{path} is not valid TOML: {exc}") from exc
-    except (OSError, UnicodeDecodeError) as exc:
-        raise RecipeError(f"{path} cannot be read: {exc}") from exc
+    except RecursionError:
+        where = _deeply_nested_key(text)
+        named = f"{where[1]} (line {where[0]})" if where else "a value"
+        raise RecipeError(
+            f"{path}: {named} nests lists or tables far more than {MAX_NESTING} levels deep "
+            "(more than the TOML reader can follow); a recipe value may nest at most "
+            f"{MAX_NESTING} deep"
+        ) from None
     return resolve(raw, overrides, source=path)
+
+
+def check_regular_file(path: Path, what: str) -> None:
+    """A :class:`RecipeError` unless ``path`` is a regular file: it says whether it is absent,
+    a directory or something else (a device such as /dev/null, a pipe, a socket), without
+    opening it (a pipe would block)."""
+    try:
+        mode = path.stat().st_mode
+    except FileNotFoundError:
+        raise RecipeError(f"{what} {path} does not exist") from None
+    except OSError as exc:
+        raise RecipeError(f"{what} {path} cannot be read: {exc}") from exc
+    if stat.S_ISDIR(mode):
+        raise RecipeError(f"{what} {path} is a directory; name a TOML file in it")
+    if not stat.S_ISREG(mode):
+        raise RecipeError(
+            f"{what} {path} is not a regular file (a device, pipe or socket); name a TOML file"
+        )
 
 
 def differences(old: dict[str, Any], new: dict[str, Any]) -> list[str]:
@@ -375,16 +645,51 @@ def training_device(training: dict[str, Any]) -> torch.device:
     if name == "auto":
         return torch.device("cuda" if torch.cuda.is_available() else "cpu")
     try:
-        device = torch.device(name)
+        with warnings.catch_warnings():  # torch warns about some deprecated device names
+            warnings.simplefilter("ignore")
+            device = torch.device(name)
     except RuntimeError as exc:
         raise RecipeError(
             f"training.device = {name!r} is not a device; use auto, cpu, cuda or cuda:N"
         ) from exc
-    if device.type == "cuda" and not torch.cuda.is_available():
+    if device.type == "meta":
         raise RecipeError(
-            f"training.device = {name!r}, but this torch sees no CUDA device; use auto or cpu"
+            f"training.device = {name!r}: meta tensors have shapes but no values, so nothing "
+            "can be trained on them; use auto, cpu, cuda or cuda:N"
         )
+    if device.type == "cuda":
+        if not torch.cuda.is_available():
+            raise RecipeError(
+                f"training.device = {name!r}, but this torch sees no CUDA device; use auto or cpu"
+            )
+        count = torch.cuda.device_count()
+        if device.index is not None and device.index >= count:
+            raise RecipeError(
+                f"training.device = {name!r}, but this torch sees {count} CUDA device(s) "
+                f"(cuda:0 to cuda:{count - 1}); use one of them, cuda or auto"
+            )
+    _check_trainable(device, name)
     return device
+
+
+def _check_trainable(device: torch.device, name: str) -> None:
+    """One tiny forward and backward pass on ``device``: the honest test that this torch has
+    the device and can train on it (torch.device parses names of backends it was not built
+    with, such as mps on Linux or xpu without XPU support)."""
+    import torch
+
+    try:
+        weight = torch.ones(2, device=device, requires_grad=True)
+        (weight * 2.0).sum().backward()
+        ok = weight.grad is not None and weight.grad.device.type == device.type
+    except Exception as exc:  # each backend says "not there" in its own way
+        reason = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        raise RecipeError(
+            f"training.device = {name!r}, but this torch cannot train on it ({reason}); use "
+            "auto, cpu, cuda or cuda:N"
+        ) from exc
+    if not ok:
+        raise RecipeError(f"training.device = {name!r}: a backward pass there gave no gradient")
 
 
 def build_optimizer(training: dict[str, Any]) -> Callable[[Any], Any]:

@@ -3,13 +3,14 @@
 :func:`summarize` reads a run directory made by ``filial run`` (``recipe.toml`` with one lineage
 per seed under ``seedS/``) or by a single :class:`~filial.Lineage` (``lineage.json``) and returns
 plain data (what ``filial report --json`` prints); :func:`format_report` turns it into text.
+Every file is read through :mod:`filial.reading`, which checks it first: a damaged or
+hand-edited file is a :class:`~filial.reading.RunFileError` naming the file and the field (the
+command exits 2), never a traceback or a report of fewer lineages than the recipe has.
 """
 
 from __future__ import annotations
 
-import json
 import statistics
-import tomllib
 from collections.abc import Mapping, Sequence
 from pathlib import Path
 from typing import Any
@@ -18,6 +19,14 @@ import numpy as np
 import torch
 
 from .metrics import default_metric
+from .reading import (
+    RunFileError,
+    check_directory,
+    read_array,
+    read_baseline,
+    read_saved_recipe,
+    read_state,
+)
 from .records import is_number
 from .rundir import RECIPE_FILE, STATE_FILE, RecipeRunDirectory, RunDirectory
 from .stopping import paired_bootstrap
@@ -47,27 +56,30 @@ def reason_in_words(decision: dict[str, Any] | None, settings: dict[str, Any]) -
     return f"{reason}: {text}"
 
 
-def _read_json(path: Path) -> dict[str, Any]:
-    try:
-        return json.loads(path.read_text(encoding="utf-8"))
-    except (OSError, ValueError) as exc:
-        raise ValueError(f"{path} cannot be read ({exc})") from exc
-
-
 def _gain_interval(
     run: RunDirectory, records: list[dict[str, Any]], best: int | None
 ) -> dict[str, Any] | None:
     """Paired bootstrap of the kept generation's held-out gain over generation 0 (default
     metric only: a custom metric is not stored with the run)."""
-    if best is None or not run.heldout_labels_path.is_file():
+    if best is None:
         return None
-
-    def load(path: Path) -> torch.Tensor:
-        return torch.from_numpy(np.load(path, allow_pickle=False))
-
-    labels = load(run.heldout_labels_path)
+    labels_path, first_path, kept_path = run.heldout_labels_path, run.heldout(0), run.heldout(best)
+    labels, first, kept = (read_array(p) for p in (labels_path, first_path, kept_path))
+    if first.ndim != 2 or kept.shape != first.shape:
+        raise RunFileError(
+            f"{kept_path} holds outputs of shape {kept.shape} and {first_path} of shape "
+            f"{first.shape}; both should be (held-out samples, outputs), the same"
+        )
+    rows = first.shape[0]
+    float_labels = np.issubdtype(labels.dtype, np.floating)
+    if labels.ndim < 1 or len(labels) != rows or (float_labels and labels.size != first.size):
+        raise RunFileError(
+            f"{labels_path} holds labels of shape {labels.shape}, but {first_path} holds "
+            f"{rows} held-out outputs of width {first.shape[1]}; one of them is damaged"
+        )
+    labels_t = torch.from_numpy(labels)
     interval = paired_bootstrap(
-        default_metric(labels), load(run.heldout(0)), load(run.heldout(best)), labels
+        default_metric(labels_t), torch.from_numpy(first), torch.from_numpy(kept), labels_t
     )
     return {
         "observed": interval.observed,
@@ -78,28 +90,45 @@ def _gain_interval(
     }
 
 
-def summarize_lineage(lineage_dir: str | Path, seed: int | None = None) -> dict[str, Any]:
-    """One lineage's records, decision, kept generation, gain interval and baseline."""
+def summarize_lineage(
+    lineage_dir: str | Path, seed: int | None = None, hint: str = ""
+) -> dict[str, Any]:
+    """One lineage's records, decision, kept generation, gain interval and baseline.
+
+    Every file read is checked first (:mod:`filial.reading`); ``hint`` ends the message when
+    ``lineage.json`` is missing.
+    """
     run = RunDirectory(lineage_dir)
-    state = _read_json(run.state_path)
-    records = state.get("records") or []
+    lineage_dir, state_path = run.root, run.state_path
+    state = read_state(state_path, hint)
+    records = state["records"]
     decision = state.get("decision") or {}
-    settings = state.get("settings") or {}
+    settings = state["settings"]
+    if seed is not None and settings["seed"] != seed:
+        raise RunFileError(
+            f"{state_path}: settings.seed is {settings['seed']}, but the folder is "
+            f"{lineage_dir.name} of seed {seed}; the seed folders were renamed or mixed up"
+        )
     best = decision.get("best") if records else None
-    default_metric_used = settings.get("metric") == "default"
     baseline_path = run.baseline_state_path
     return {
-        "seed": settings.get("seed") if seed is None else seed,
-        "lineage_dir": str(run.root),
-        "targets": settings.get("targets"),
+        "seed": settings["seed"],
+        "lineage_dir": str(lineage_dir),
+        "targets": settings["targets"],
         "records": records,
         "best": best,
         "stop_reason": decision.get("reason") if decision.get("stop") else None,
         "stop_in_words": reason_in_words(decision, settings),
         "checkpoint": str(run.recorded(records[best]["checkpoint"])) if best is not None else None,
-        "gain": _gain_interval(run, records, best) if default_metric_used else None,
-        "baseline": _read_json(baseline_path) if baseline_path.is_file() else None,
+        "gain": _gain_interval(run, records, best) if settings["metric"] == "default" else None,
+        "baseline": read_baseline(baseline_path) if _exists(baseline_path) else None,
     }
+
+
+def _exists(path: Path) -> bool:
+    """Present in any form (a directory or a dangling link where a file belongs is named by
+    the reader, not skipped)."""
+    return path.is_symlink() or path.exists()
 
 
 def spread(values: Sequence[float | None]) -> tuple[float | None, float | None]:
@@ -111,26 +140,34 @@ def spread(values: Sequence[float | None]) -> tuple[float | None, float | None]:
 
 
 def summarize(run_dir: str | Path) -> dict[str, Any]:
-    """Everything ``filial report`` shows, as plain data."""
+    """Everything ``filial report`` shows, as plain data.
+
+    Raises :class:`~filial.reading.RunFileError` (an InputError) naming the file and field of
+    anything it cannot read, including a seed of the recipe whose lineage is missing.
+    """
     run_dir = Path(run_dir)
+    check_directory(run_dir)
     recipe_run = RecipeRunDirectory(run_dir)
-    if recipe_run.recipe_path.is_file():
-        recipe = tomllib.loads(recipe_run.recipe_path.read_text(encoding="utf-8"))
+    recipe_path, state_path = recipe_run.recipe_path, RunDirectory(run_dir).state_path
+    if _exists(recipe_path):
+        recipe = read_saved_recipe(recipe_path)
         seeds = recipe["run"]["seeds"]
+        hint = (
+            f", but {recipe_path} lists seed {{seed}} (run.seeds = {seeds}): its lineage was "
+            "moved or deleted, or the run stopped before that seed began (rerun the same "
+            "filial run command to resume)"
+        )
         lineages = [
-            summarize_lineage(recipe_run.seed(s).root, s)
-            for s in seeds
-            if recipe_run.seed(s).is_run
+            summarize_lineage(recipe_run.seed(s).root, s, hint.format(seed=s)) for s in seeds
         ]
-        tensorboard = recipe_run.tensorboard_path
-    elif RunDirectory(run_dir).is_run:
+    elif _exists(state_path):
         recipe = None
         lineages = [summarize_lineage(run_dir)]
-        tensorboard = RunDirectory(run_dir).tensorboard_path
     else:
-        raise ValueError(
+        raise RunFileError(
             f"{run_dir} is not a filial run directory (no {RECIPE_FILE} and no {STATE_FILE})"
         )
+    tensorboard = recipe_run.tensorboard_path
     depth = max((len(x["records"]) for x in lineages), default=0)
     generations = []
     for g in range(depth):

@@ -18,6 +18,7 @@ Recipe factories: ``model.factory = "filial.vision:cifar_resnet"`` and ``data.fa
 
 from __future__ import annotations
 
+import os
 from pathlib import Path
 from typing import Any
 
@@ -27,8 +28,8 @@ import torch.nn.functional as F
 from torch import nn
 from torch.utils.data import DataLoader, Dataset
 
+from . import _checks
 from .errors import InputError
-from .stopping import as_count
 
 # Per-channel mean and standard deviation of the training images (pixels in [0, 1]), quoted from
 # memory of the values commonly published for these datasets, not recomputed here.
@@ -41,23 +42,47 @@ NAMES = {"cifar10": "CIFAR-10", "cifar100": "CIFAR-100"}
 DOWNLOAD_PAGE = "https://www.cs.toronto.edu/~kriz/cifar.html"
 ARCHIVES = {"cifar10": "cifar-10-python.tar.gz", "cifar100": "cifar-100-python.tar.gz"}
 TRAIN_SIZE, TEST_SIZE = 50_000, 10_000  # both datasets; FakeData mirrors them
+# ResNet-1202, the deepest CIFAR ResNet He et al. 2016 trained (section 4.2, table 6).
+MAX_DEPTH = 1202
 
 
 # -- the model -----------------------------------------------------------------------------------
 
 
 def check_depth(depth: Any) -> int:
-    """``depth`` if it is ``6n + 2`` for some ``n >= 1``; otherwise an :class:`InputError`.
+    """``depth`` if it is ``6n + 2`` for a whole ``n >= 1``, at most :data:`MAX_DEPTH`;
+    otherwise an :class:`InputError`.
 
     >>> check_depth(20), check_depth(110)
     (20, 110)
     """
-    if not isinstance(depth, int) or isinstance(depth, bool) or depth < 8 or (depth - 2) % 6:
+    if (
+        not isinstance(depth, int)
+        or isinstance(depth, bool)
+        or not 8 <= depth <= MAX_DEPTH
+        or (depth - 2) % 6
+    ):
         raise InputError(
-            "depth should be 6n+2 for a whole n >= 1 (8, 14, 20, 26, 32, ...; the paper's are 20, "
-            f"32, 44, 56 and 110), but got {depth!r}"
+            f"depth should be 6n+2 for a whole n >= 1, at most {MAX_DEPTH} (8, 14, 20, 26, 32, "
+            f"...; the paper's are 20, 32, 44, 56 and 110, and 1202 its deepest), but got {depth!r}"
         )
     return depth
+
+
+def resnet_parameters(depth: int, classes: int) -> int:
+    """The parameter count of ``CifarResNet(depth, classes)``, computed without building it.
+
+    >>> resnet_parameters(20, 10)  # the paper's 0.27M (He et al. 2016, table 6)
+    269722
+    """
+    n = (check_depth(depth) - 2) // 6
+    count = 3 * 16 * 9 + 2 * 16  # first convolution and its batch norm
+    width = 16
+    for channels in (16, 32, 64):
+        for _ in range(n):
+            count += width * channels * 9 + channels * channels * 9 + 4 * channels
+            width = channels
+    return count + 64 * classes + classes
 
 
 class ShortcutA(nn.Module):
@@ -98,8 +123,10 @@ class CifarResNet(nn.Module):
     def __init__(self, depth: int = 20, classes: int = 10) -> None:
         super().__init__()
         n = (check_depth(depth) - 2) // 6
-        if not isinstance(classes, int) or isinstance(classes, bool) or classes < 1:
-            raise InputError(f"classes should be a positive integer, but got {classes!r}")
+        classes = _checks.integer(classes, "classes", 1)
+        _checks.parameters(
+            resnet_parameters(depth, classes), f"a ResNet-{depth} with {classes:,} classes"
+        )
         self.conv = nn.Conv2d(3, 16, 3, padding=1, bias=False)
         self.bn = nn.BatchNorm2d(16)
         blocks: list[nn.Module] = []
@@ -204,11 +231,12 @@ def _fake_dataset(dataset: str) -> tuple[Any, Any]:
     return train, test
 
 
-def _count(value: Any, key: str, minimum: int = 0) -> int:
-    try:
-        return as_count(value, f"data.{key}", minimum)
-    except ValueError as exc:
-        raise InputError(str(exc)) from None
+def max_workers() -> int:
+    """The most DataLoader workers :func:`cifar_loaders` starts: four per core, at least 32.
+    Each worker is a process with its own copy of the dataset object; beyond a few per core
+    they add memory, not speed (common practice), and a count typed with zeros too many would
+    start that many processes."""
+    return max(32, 4 * (os.cpu_count() or 1))
 
 
 def cifar_loaders(
@@ -230,24 +258,35 @@ def cifar_loaders(
     test split (its first ``test_subset`` images when > 0), without augmentation. ``source =
     "fake"`` swaps the files for torchvision's FakeData at the same sizes.
     """
-    if dataset not in CLASSES:
-        raise InputError(f"data.dataset should be 'cifar10' or 'cifar100', but got {dataset!r}")
-    if source not in ("folder", "fake"):
-        raise InputError(f"data.source should be 'folder' or 'fake', but got {source!r}")
-    for key, value in (
-        ("subset", subset),
-        ("heldout_size", heldout_size),
-        ("test_subset", test_subset),
-        ("split_seed", split_seed),
-        ("workers", workers),
-    ):
-        _count(value, key)
-    _count(batch_size, "batch_size", minimum=1)
-    if not 1 <= heldout_size < TRAIN_SIZE:
-        raise InputError(
-            f"data.heldout_size should lie in 1..{TRAIN_SIZE - 1} (it is split off the "
-            f"{TRAIN_SIZE} training images), but got {heldout_size!r}"
-        )
+    _checks.choice(dataset, "data.dataset", tuple(CLASSES))
+    _checks.choice(source, "data.source", ("folder", "fake"))
+    if not isinstance(root, (str, os.PathLike)) or not str(root):
+        raise InputError(f"data.root should be a folder name, but got data.root={root!r}")
+    heldout_size = _checks.integer(
+        heldout_size,
+        "data.heldout_size",
+        1,
+        TRAIN_SIZE - 1,
+        f"it is split off the {TRAIN_SIZE:,} training images",
+    )
+    rest = TRAIN_SIZE - heldout_size
+    subset = _checks.integer(
+        subset, "data.subset", 0, rest, f"0 for all {rest:,} training images left"
+    )
+    _checks.integer(
+        test_subset, "data.test_subset", 0, TEST_SIZE, f"0 for all {TEST_SIZE:,} test images"
+    )
+    _checks.integer(split_seed, "data.split_seed", 0, _checks.MAX_SEED)
+    _checks.integer(
+        batch_size,
+        "data.batch_size",
+        1,
+        TRAIN_SIZE,
+        f"a larger batch than the {TRAIN_SIZE:,} training images is the whole set anyway",
+    )
+    _checks.integer(
+        workers, "data.workers", 0, max_workers(), "each worker is a process; 4 per core at most"
+    )
     folder = Path(root).expanduser().absolute()
     train_base, test_base = (
         _fake_dataset(dataset) if source == "fake" else _folder_dataset(dataset, folder)
