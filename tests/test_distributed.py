@@ -277,7 +277,6 @@ def test_both_ranks_report_the_same_records_and_stop_together(two_ranks):
     assert len(straight["records"]) >= 2
     # only rank 0 writes TensorBoard runs: one event file per run
     assert len(list((root / "straight" / "tb" / "gen0").iterdir())) == 1
-    assert len(list((root / "straight" / "tb" / "hparams").iterdir())) == 1
 
 
 @pytest.mark.slow

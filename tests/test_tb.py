@@ -99,10 +99,12 @@ def test_write_arms_layout_and_a_rewrite_replaces_the_runs(tmp_path):
     accumulator = _accumulator(tb / ARMS / WITH)
     content = accumulator.Tensors("custom_scalars__config__")[0].tensor_proto.string_val[0]
     layout = layout_pb2.Layout.FromString(content)
-    first = layout.category[0]
+    first, second = layout.category[:2]
     assert "did generations help" in first.title
-    assert [chart.WhichOneof("content") for chart in first.chart] == ["margin", "margin"]
-    assert first.chart[1].margin.series[0].value == "answer/gain vs baseline matched"
+    charts = [*first.chart, *second.chart]
+    assert [chart.WhichOneof("content") for chart in charts] == ["margin"] * 2
+    assert first.chart[0].margin.series[0].value == "answer/gain vs generation 0 alone"
+    assert second.chart[0].margin.series[0].value == "answer/gain vs baseline matched"
 
 
 @pytest.fixture(scope="module")

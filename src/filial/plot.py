@@ -159,9 +159,9 @@ def _panel(ax: Any, c: Comparison, label: str) -> None:
     ax.set_xlim(left, right)
     ax.set_xticks(steps)
     ax.set_xlabel("generation")
-    ax.set_ylabel(f"{label} (the lineage's metric, higher is better)")
+    ax.set_ylabel(f"{c.key.replace('heldout', 'held-out')} metric (higher is better)")
     ax.grid(True, alpha=0.3)
-    head = f"{label}: kept {_fmt(c.kept)} vs generation 0 {_fmt(c.alone)}"
+    head = f"{label}\nkept generation {_fmt(c.kept)}, generation 0 {_fmt(c.alone)}"
     if c.kept_gain is not None:
         head += f"\ngain of the kept generation {c.kept_gain.mean:+.4f}"
         if c.kept_gain.seeds > 1:
@@ -176,19 +176,20 @@ def figure(views: Sequence[SeedView]) -> Any:
         (c, label)
         for c, label in (
             (compare(views, "heldout"), "held-out"),
-            (compare(views, "test"), "test (reported, never used to choose)"),
+            (compare(views, "test"), "test, reported, never used to choose"),
         )
         if c is not None
     ]
     if not panels:
         raise ValueError("no generation has a held-out figure yet, so there is nothing to draw")
-    fig = Figure(figsize=(6.4 * len(panels), 5.6), dpi=110, layout="constrained")
+    fig = Figure(figsize=(6.6 * len(panels), 6.0), dpi=110, layout="constrained")
     FigureCanvasAgg(fig)
     axes = fig.subplots(1, len(panels), squeeze=False)[0]
     for ax, (c, label) in zip(axes, panels, strict=True):
         _panel(ax, c, label)
     handles, labels = axes[0].get_legend_handles_labels()
-    fig.legend(handles, labels, loc="outside lower center", ncol=3, fontsize=9, frameon=False)
+    columns = 3 if len(panels) > 1 else 2
+    fig.legend(handles, labels, loc="outside lower center", ncol=columns, fontsize=9, frameon=False)
     fig.suptitle("did generations help? the metric by generation against each arm", fontsize=12)
     return fig
 

@@ -88,13 +88,16 @@ _HPARAM_NAMES = {
     "patience": "stop: patience",
     "min_gain": "stop: min gain",
 }
-# The table names a metric by its tag: no prefix.
+# The table names a metric by its tag (no prefix) and shows the first five by name: the
+# held-out figures and the kept generation.
 _METRIC_NAMES = {
-    "best_generation": "kept generation",
-    "generations": "generations after generation 0",
+    "heldout_gain": "held-out gain, kept over generation 0",
     "heldout_best": "held-out, kept generation",
     "heldout_generation_0": "held-out, generation 0",
-    "heldout_gain": "held-out gain, kept over generation 0",
+    "best_generation": "kept generation",
+    "generations": "trained generations after 0",
+    "test_best": "test, kept generation",
+    "test_gain": "test gain, kept over generation 0",
 }
 
 
@@ -295,15 +298,21 @@ def _answer_tag(arm: str) -> str:
 
 
 def layout(baselines: Sequence[str], test: bool) -> dict[str, Any]:
-    """The custom-scalars layout: the answer first (margin charts, never smoothed)."""
-    first: dict[str, Any] = {}
-    for arm in [ALONE, *(baseline_run(n) for n in baselines)]:
+    """The custom-scalars layout: the answer first, as margin charts (never smoothed).
+
+    Note: one margin chart per comparison, so that a far-away baseline cannot squash the
+    others' axis; generation 0 alone gets a category of its own, since TensorBoard 2.21 does
+    not keep the order of several margin charts within one category.
+    """
+
+    def gain(arm: str) -> tuple[str, list[Any]]:
         tag = _answer_tag(arm)
         title = (
-            f"held-out gain over generation 0, with generations vs {arm} "
+            f"held-out gain over generation 0: with generations vs {arm} "
             "(mean -+ sd over seeds; 0 = generation 0 alone)"
         )
-        first[title] = ["Margin", [tag, f"spread/{tag[7:]}, low", f"spread/{tag[7:]}, high"]]
+        return title, ["Margin", [tag, f"spread/{tag[7:]}, low", f"spread/{tag[7:]}, high"]]
+
     every: dict[str, Any] = {
         "held-out by generation, every arm (mean -+ sd over seeds)": [
             "Margin",
@@ -323,11 +332,16 @@ def layout(baselines: Sequence[str], test: bool) -> dict[str, Any]:
         for name in ("held-out", "test", "train vs labels", "ensemble", "agreement with teacher")
     }
     detail["loss by epoch, per seed and generation"] = ["Multiline", ["^epoch/loss$"]]
-    return {
-        "filial 1: did generations help? (the generations every seed reached)": first,
-        "filial 2: the metric by generation": every,
-        "filial 3: each seed (filter runs with seed0/ ...)": detail,
+    result = {
+        "filial 1: did generations help? (generations every seed reached)": dict([gain(ALONE)])
     }
+    if baselines:
+        result["filial 2: with generations against each baseline"] = dict(
+            gain(baseline_run(n)) for n in baselines
+        )
+    result["filial 3: the metric by generation, every arm"] = every
+    result["filial 4: each seed (filter the runs with seed0/ ...)"] = detail
+    return result
 
 
 def _band_tags(writer: SummaryWriter, tag: str, band: Band, step: int, spread: str) -> None:
