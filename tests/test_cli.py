@@ -97,38 +97,39 @@ def test_run_report_and_tensorboard_end_to_end(small_recipe, tmp_path, capsys):
 
     tb = run_dir / "tb"
     for seed in (0, 1):
-        for g in range(3):
-            assert [s for s, _ in _scalars(tb / f"seed{seed}" / f"gen{g}", "train/loss")] == [
-                0,
-                1,
-                2,
-            ]
-        heldout = _scalars(tb / f"seed{seed}" / "summary", "compare/heldout_by_generation")
         records = json.loads((run_dir / f"seed{seed}" / "lineage.json").read_text())["records"]
-        assert [s for s, _ in heldout] == [0, 1, 2]
-        assert [v for _, v in heldout] == pytest.approx([r["heldout"] for r in records])
-        flat = _scalars(tb / f"seed{seed}" / "summary", "compare/generation_0")
-        assert [v for _, v in flat] == pytest.approx([records[0]["heldout"]] * 3)
-        matched = _scalars(tb / f"seed{seed}" / "summary", "compare/matched_baseline")
-        assert len(matched) == 3
-        accumulator = EventAccumulator(str(tb / f"seed{seed}" / "summary"))
+        for g, record in enumerate(records):
+            run = tb / f"seed{seed}" / f"gen{g}"
+            assert [s for s, _ in _scalars(run, "epoch/loss")] == [0, 1, 2]
+            assert _scalars(run, "generation/held-out") == [(g, pytest.approx(record["heldout"]))]
+        matched = _scalars(tb / f"seed{seed}" / "baseline matched", "generation/held-out")
+        assert [s for s, _ in matched] == [0, 1, 2]
+        accumulator = EventAccumulator(str(tb / f"seed{seed}" / "hparams"))
         accumulator.Reload()
-        assert "custom_scalars__config__" in accumulator.PluginTagToContent("custom_scalars")
         start = accumulator.PluginTagToContent("hparams")["_hparams_/session_start_info"]
         session = plugin_data_pb2.HParamsPluginData.FromString(start).session_start_info
-        assert session.hparams["seed"].number_value == seed
-        assert _scalars(tb / f"seed{seed}" / "baseline", "baseline/heldout")
-    spread = _scalars(tb / "seeds", "seeds/heldout_mean")
-    assert [v for _, v in spread] == pytest.approx(
+        assert session.hparams["run: seed"].string_value == str(seed)
+    # The arms view: means over the two seeds, the custom-scalars layout with it.
+    heldout = _scalars(tb / "arms" / "with generations", "held-out/every arm")
+    assert [v for _, v in heldout] == pytest.approx(
         [row["heldout_mean"] for row in report["generations"]]
     )
+    accumulator = EventAccumulator(str(tb / "arms" / "with generations"))
+    accumulator.Reload()
+    assert "custom_scalars__config__" in accumulator.PluginTagToContent("custom_scalars")
+    level = _scalars(tb / "arms" / "baseline matched", "held-out/every arm")
+    assert [s for s, _ in level] == [0, 1, 2]
+    assert [v for _, v in level] == pytest.approx(
+        [np.mean([x["baseline"]["heldout"] for x in report["lineages"]])] * 3
+    )
     # No stray folders: exactly the runs the layout names.
+    assert sorted(p.name for p in tb.iterdir()) == ["arms", "seed0", "seed1"]
     assert sorted(p.name for p in (tb / "seed0").iterdir()) == [
-        "baseline",
+        "baseline matched",
         "gen0",
         "gen1",
         "gen2",
-        "summary",
+        "hparams",
     ]
 
 

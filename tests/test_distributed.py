@@ -276,8 +276,8 @@ def test_both_ranks_report_the_same_records_and_stop_together(two_ranks):
     assert straight["stop_reason"] == one["straight"]["stop_reason"] is not None
     assert straight["best"] == one["straight"]["best"]
     assert len(straight["records"]) >= 2
-    # only rank 0 writes TensorBoard runs: one summary event file per lineage
-    assert len(list((root / "straight" / "tb" / "summary").iterdir())) == 1
+    # only rank 0 writes TensorBoard runs: one event file per run
+    assert len(list((root / "straight" / "tb" / "gen0").iterdir())) == 1
 
 
 @pytest.mark.slow

@@ -4,8 +4,8 @@
     runs one lineage per seed of the recipe under one run directory (``DIR/seedS/``), the matched
     baseline when the recipe asks for it, writes TensorBoard runs under ``DIR/tb`` and prints the
     report. Rerunning the same command resumes after the last finished generation.
-``filial report RUN_DIR [--json]``
-    prints what a run found.
+``filial report RUN_DIR [--json] [--plot FILE.png]``
+    prints what a run found, or draws it (``--plot``, with the ``plot`` extra).
 
 Exit codes: 0 success; 2 a bad recipe, bad arguments or bad input, or a run directory in use by
 another process (the message names the key or the problem; a run directory this call created is
@@ -24,7 +24,7 @@ import shutil
 import sys
 import tomllib
 import traceback
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -40,7 +40,8 @@ from .data import check_loader
 from .errors import InputError, Problems
 from .fit import EpochFit, fit_epochs
 from .lineage import Lineage
-from .report import format_report, spread, summarize
+from .observers import TensorBoardRuns
+from .report import format_report, summarize
 from .rundir import (
     RECIPE_FILE,
     Claim,
@@ -51,7 +52,7 @@ from .rundir import (
     seed_name,
 )
 from .settings import Settings
-from .tb import seeds_spread
+from .tb import SeedView, write_arms
 
 EXIT_OK, EXIT_FAILED, EXIT_USAGE, EXIT_INTERRUPTED = 0, 1, 2, 130
 
@@ -185,6 +186,8 @@ def _save_recipe(recipe: recipes.Recipe, run: RecipeRunDirectory) -> None:
 def _lineage(
     p: Plan, run: RecipeRunDirectory, seed: int, quiet: bool, fresh: bool = False
 ) -> Lineage:
+    # Each seed's TensorBoard runs; the arms view across seeds is written by _train.
+    tensorboard = TensorBoardRuns(run.seed_tensorboard(seed), alone=False)
     return Lineage(
         p.model_fn,
         p.train,
@@ -192,7 +195,8 @@ def _lineage(
         run_dir=run.seed(seed).root,
         test_loader=p.test,
         progress=not quiet,
-        tensorboard=run.seed_tensorboard(seed),
+        tensorboard=False,
+        observers=[tensorboard],
         fresh=fresh,
         **generation_settings(p.recipe, seed),
     )
@@ -208,6 +212,7 @@ def _train(p: Plan, run: RecipeRunDirectory, lineages: list[Lineage], on_termina
         return fit_epochs(count, optimizer, scheduler, progress=on_terminal, device=device)
 
     fit = make_fit(training["epochs"])
+    views: list[SeedView] = []
     for lineage in lineages:
         seed = lineage.settings["seed"]
         # On a terminal: a bar for the generations and one for the epochs, cleared when done;
@@ -226,19 +231,13 @@ def _train(p: Plan, run: RecipeRunDirectory, lineages: list[Lineage], on_termina
             bar.update(1)
             bar.set_postfix(heldout=f"{record['heldout'] or float('nan'):.4f}", refresh=True)
         bar.close()
+        baselines: dict[str, Mapping[str, Any]] = {}
         if p.recipe["run"]["baseline"] == "matched" and lineage.result.best is not None:
-            lineage.matched_baseline(make_fit)
-    if len(lineages) > 1:
-        depth = max(len(x.result.records) for x in lineages)
-        means: list[float | None] = []
-        stds: list[float | None] = []
-        for g in range(depth):
-            mean, std = spread(
-                [x.result.records[g]["heldout"] for x in lineages if len(x.result.records) > g]
-            )
-            means.append(mean)
-            stds.append(std)
-        seeds_spread(run.tensorboard_path, means, stds)
+            baselines["matched"] = lineage.matched_baseline(make_fit)
+        # TensorBoard's arms view, from the records of the seeds finished so far.
+        result = lineage.result
+        views.append(SeedView(seed, result.records, result.best, baselines))
+        write_arms(run.tensorboard_path, views, finished=len(views) == len(lineages))
 
 
 def _resume_command(argv: Sequence[str]) -> str:
@@ -350,7 +349,25 @@ def _report(args: argparse.Namespace) -> int:
     except (ValueError, OSError, KeyError, tomllib.TOMLDecodeError) as exc:
         print(f"filial: {exc}", file=sys.stderr)
         return EXIT_USAGE
+    if args.plot and _plot(summary, args.plot) != EXIT_OK:
+        return EXIT_USAGE
     print(json.dumps(summary, indent=2) if args.json else format_report(summary))
+    return EXIT_OK
+
+
+def _plot(summary: dict[str, Any], path: str) -> int:
+    """``filial report RUN --plot FILE.png``: the run's picture (needs the plot extra)."""
+    from . import plot
+
+    try:
+        written = plot.save([SeedView.from_summary(x) for x in summary["lineages"]], path)
+    except plot.PlotUnavailable as exc:
+        print(f"filial: --plot: {exc}", file=sys.stderr)
+        return EXIT_USAGE
+    except (ValueError, OSError) as exc:
+        print(f"filial: --plot {path}: {exc}", file=sys.stderr)
+        return EXIT_USAGE
+    print(f"filial: wrote {written}", file=sys.stderr)
     return EXIT_OK
 
 
@@ -374,6 +391,12 @@ def parser() -> argparse.ArgumentParser:
     report = sub.add_parser("report", help="print what a run found")
     report.add_argument("run_dir")
     report.add_argument("--json", action="store_true", help="print the report as JSON")
+    report.add_argument(
+        "--plot",
+        metavar="FILE.png",
+        help="also draw the metric by generation against generation 0 and each baseline into "
+        "FILE.png (needs matplotlib: pip install 'filial[plot]')",
+    )
     return top
 
 

@@ -18,7 +18,7 @@ from __future__ import annotations
 import functools
 import json
 import logging
-from collections.abc import Callable, Iterator
+from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -143,6 +143,7 @@ class Lineage:
         fresh: bool = False,
         progress: bool = True,
         tensorboard: bool | str | Path = True,
+        observers: Sequence[Observer] = (),
     ) -> None:
         # Long only for its arguments: each is checked elsewhere, and the rooms are built here.
         settings, train, heldout = _checked_arguments(
@@ -194,7 +195,8 @@ class Lineage:
             self._run, model_fn, train_loader, replay, spec, settings.seed
         )
         self._heldout = HeldoutHistory(self._run.heldout, settings.targets, self._inputs.metric)
-        self._observers = Observers(self._observers_for(progress, tensorboard))
+        self._observers = Observers(self._observers_for(progress, tensorboard, observers))
+        self._observers.attached(self.run_dir, self.settings)
         self._state = LineageState(self._run, self.settings)
         if distributed.is_distributed():
             self._check_ranks(train_loader)
@@ -202,14 +204,18 @@ class Lineage:
         if self._state.resumed:
             self._observers.resumed(self._run.root, self._state.records)
 
-    def _observers_for(self, progress: bool, tensorboard: bool | str | Path) -> list[Observer]:
-        """TensorBoard runs and progress lines, on rank 0 only under a process group."""
+    def _observers_for(
+        self, progress: bool, tensorboard: bool | str | Path, extra: Sequence[Observer]
+    ) -> list[Observer]:
+        """TensorBoard runs, the user's observers and progress lines, on rank 0 only under a
+        process group."""
         if not distributed.is_main():
             return []
         observers: list[Observer] = []
         if tensorboard:
             folder = self._run.tensorboard_path if tensorboard is True else Path(tensorboard)
-            observers.append(TensorBoardRuns(folder, self.settings))
+            observers.append(TensorBoardRuns(folder))
+        observers.extend(extra)
         if progress:
             observers.append(ConsoleProgress())
         return observers

@@ -29,6 +29,9 @@ from .tb import TensorBoardLog
 class Observer:
     """The calls a lineage makes to its observers (each one a no-op here)."""
 
+    def attached(self, run_dir: Path, settings: dict[str, Any]) -> None:
+        """The lineage is built: its run directory and its settings (``lineage.json``'s)."""
+
     def resumed(self, run_dir: Path, records: Sequence[GenerationRecord]) -> None:
         """An existing run directory is resumed after its last finished generation."""
 
@@ -55,6 +58,10 @@ class Observers(Observer):
 
     def __init__(self, observers: Sequence[Observer] = ()) -> None:
         self.observers = list(observers)
+
+    def attached(self, run_dir: Path, settings: dict[str, Any]) -> None:
+        for observer in self.observers:
+            observer.attached(run_dir, settings)
 
     def resumed(self, run_dir: Path, records: Sequence[GenerationRecord]) -> None:
         for observer in self.observers:
@@ -128,22 +135,29 @@ _HPARAMS = ("seed", "targets", "temperature", "label_weight", "max_generations",
 
 
 class TensorBoardRuns(Observer):
-    """One lineage's TensorBoard runs under ``folder`` (see :mod:`filial.tb`)."""
+    """One lineage's TensorBoard runs under ``folder`` (see :mod:`filial.tb`).
 
-    def __init__(self, folder: str | os.PathLike[str], settings: dict[str, Any]) -> None:
-        self.log = TensorBoardLog(folder)
+    ``alone`` (default): the lineage is the whole run and also writes the ``arms/`` view;
+    ``filial run`` passes False for each seed and writes that view across the seeds itself.
+    """
+
+    def __init__(self, folder: str | os.PathLike[str], *, alone: bool = True) -> None:
+        self.log = TensorBoardLog(folder, alone=alone)
+        self.settings: dict[str, Any] = {}
+
+    def attached(self, run_dir: Path, settings: dict[str, Any]) -> None:
         self.settings = {key: settings[key] for key in _HPARAMS}
 
     def generation_ended(
         self, record: GenerationRecord, records: Sequence[GenerationRecord], decision: DecisionState
     ) -> None:
-        self.log.generation(dict(record), dict(records[0]))
+        self.log.generation(record, records[0], records=records)
         if decision["stop"]:
             self.log.session(self.settings, session_metrics(records))
             self.log.close()
 
     def baseline_ended(self, record: BaselineRecord, records: Sequence[GenerationRecord]) -> None:
-        self.log.baseline(dict(record), [r["generation"] for r in records])
+        self.log.baseline(record, [r["generation"] for r in records], records=records)
         self.log.close()
 
     def close(self) -> None:
