@@ -102,3 +102,13 @@ def scaled_data():
     return DataLoader(TensorDataset(inputs * scale, labels), batch_size=16), DataLoader(
         _tensors(40, 1), batch_size=16
     )
+
+
+_interrupt_calls = itertools.count()
+
+
+def interrupted_on_third_call(hidden=(16,)):
+    """A model factory the user interrupts (Ctrl-C) while filial is still starting up."""
+    if next(_interrupt_calls) == 2:
+        raise KeyboardInterrupt
+    return nn.Sequential(nn.Linear(64, 16), nn.ReLU(), nn.Linear(16, 10))

@@ -44,6 +44,7 @@ from .records import BaselineRecord, DecisionState, GenerationRecord
 from .rundir import LineageState, RunDirectory
 from .seeding import samplers_of, seed_generation
 from .settings import DataFacts, Settings, saved_settings
+from .space import check_store_fits
 from .stopping import StopRule
 from .store import TargetStore, index_dtype
 from .teacher import StoreSpec, TeacherStores
@@ -167,6 +168,15 @@ class Lineage:
         loss = settings.loss()
         self._checks = ModelChecks(model_fn, train.inputs, train.labels, loss)
         _check_top_k(settings, self._checks.width)
+        if not _online(settings):  # the next generation's store must fit (online: no store)
+            check_store_fits(
+                run_dir,
+                len(train_loader.dataset),  # type: ignore[arg-type]
+                settings.views,
+                self._checks.width,
+                settings.store_dtype,
+                settings.top_k,
+            )
         self.model_fn = model_fn
         self.run_dir = Path(run_dir)
         self._run = RunDirectory(self.run_dir)
