@@ -21,6 +21,7 @@ from pathlib import Path
 from typing import IO, Any
 
 from ._faults import fault_point
+from .errors import LockedError
 
 _TEMP_RE = re.compile(r"^\..+\.tmp-(\d+)$")
 
@@ -191,19 +192,3 @@ class RunLock:
             self.release()
         except Exception:  # interpreter shutdown
             pass
-
-
-class LockedError(RuntimeError):
-    """Another live process works in this run directory."""
-
-    def __init__(self, directory: Path, holder: dict[str, object] | None) -> None:
-        who = "another process"
-        if holder:
-            since = time.localtime(float(str(holder["started"])))
-            started = time.strftime("%Y-%m-%d %H:%M:%S", since)
-            who = f"process {holder['pid']} on {holder.get('host', '?')} (since {started})"
-        super().__init__(
-            f"{directory} is in use by {who}; wait for it to finish or stop it, or use another "
-            "run directory"
-        )
-        self.holder = holder

@@ -33,11 +33,12 @@ from torch import nn
 from torch.utils.data import DataLoader
 from tqdm.auto import tqdm
 
+from . import __version__
 from . import recipe as recipes
 from ._faults import fault_point
-from ._io import LockedError, atomic_write
+from ._io import atomic_write
 from .data import check_loader
-from .errors import InputError, Problems
+from .errors import InputError, LockedError, Problems
 from .fit import EpochFit, fit_epochs
 from .lineage import Lineage
 from .observers import TensorBoardRuns
@@ -128,7 +129,7 @@ def generation_settings(recipe: recipes.Recipe, seed: int = 0) -> dict[str, Any]
         "targets": g["targets"],
         "temperature": g["temperature"],
         "label_weight": g["label_weight"],
-        "max_generations": g["max"],
+        "max_generations": g["max_generations"],
         "patience": g["patience"],
         "min_gain": g["min_gain"],
         "views": g["views"],
@@ -376,6 +377,7 @@ def parser() -> argparse.ArgumentParser:
         prog="filial",
         description="Multi-generation self-distillation from TOML recipes.",
     )
+    top.add_argument("--version", action="version", version=f"filial {__version__}")
     sub = top.add_subparsers(dest="command", required=True)
     run = sub.add_parser("run", help="run (or resume) the lineages of a recipe")
     run.add_argument("recipe", help="a TOML recipe, e.g. recipes/digits_ce.toml")
@@ -386,10 +388,20 @@ def parser() -> argparse.ArgumentParser:
         metavar="KEY=VALUE",
         help="override a recipe key, e.g. --set generations.temperature=4 (repeatable)",
     )
-    run.add_argument("--run-dir", help="where to write the run (default: the recipe's run_dir)")
-    run.add_argument("--fresh", action="store_true", help="delete an earlier run there first")
+    run.add_argument(
+        "--run-dir",
+        help="where to write the run (default: the recipe's run.run_dir if it sets one, else "
+        "runs/RUN_NAME with the recipe's run.name, e.g. runs/digits_ce)",
+    )
+    run.add_argument(
+        "--fresh",
+        action="store_true",
+        help="delete an earlier filial run in that directory first (only filial's files)",
+    )
     report = sub.add_parser("report", help="print what a run found")
-    report.add_argument("run_dir")
+    report.add_argument(
+        "run_dir", help="a run directory made by filial run (or by a Lineage), e.g. runs/digits_ce"
+    )
     report.add_argument("--json", action="store_true", help="print the report as JSON")
     report.add_argument(
         "--plot",

@@ -6,7 +6,9 @@ bug or by the machine (a full disk) are not :class:`InputError`.
 
 from __future__ import annotations
 
+import time
 from collections.abc import Callable
+from pathlib import Path
 from typing import TypeVar
 
 T = TypeVar("T")
@@ -49,3 +51,19 @@ class Problems:
             raise ValueError(
                 "several settings are wrong:\n" + "\n".join(f"  - {p}" for p in self.found)
             )
+
+
+class LockedError(InputError, RuntimeError):
+    """Another live process works in this run directory (the command exits 2)."""
+
+    def __init__(self, directory: Path, holder: dict[str, object] | None) -> None:
+        who = "another process"
+        if holder:
+            since = time.localtime(float(str(holder["started"])))
+            started = time.strftime("%Y-%m-%d %H:%M:%S", since)
+            who = f"process {holder['pid']} on {holder.get('host', '?')} (since {started})"
+        super().__init__(
+            f"{directory} is in use by {who}; wait for it to finish or stop it, or use another "
+            "run directory"
+        )
+        self.holder = holder

@@ -15,7 +15,7 @@ from __future__ import annotations
 
 import functools
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 from typing import Any
 
@@ -78,6 +78,64 @@ class Measured:
 Conclude = Callable[["Generation", Callable[[], Measured] | None], GenerationRecord]
 
 
+class Passes:
+    """The passes over ``gen.loader`` and the losses ``gen.loss`` returned in them.
+
+    Hook mode's epochs are the user's own loop, so filial counts them itself: every pass is an
+    epoch (``passes``, ``batches`` go into the record), and a pass's mean loss becomes its epoch
+    entry unless the user logged that epoch with ``gen.log_epoch`` (whose figures win). The
+    losses are kept as detached tensors and summed once per pass: no device synchronisation and
+    no extra kernel per batch.
+    """
+
+    def __init__(self) -> None:
+        self.count = 0  # passes begun
+        self.batches = 0  # batches yielded, over all passes
+        self.losses: list[torch.Tensor] = []  # of the pass under way
+
+    def begin(self, history: list[EpochEntry]) -> None:
+        self.close(history)
+        self.count += 1
+
+    def close(self, history: list[EpochEntry]) -> None:
+        """End the pass under way: its mean loss as epoch ``count - 1``, unless logged."""
+        if self.count == 0 or not self.losses:
+            self.losses = []
+            return
+        epoch = self.count - 1
+        mean = float(torch.stack([loss.float() for loss in self.losses]).mean())
+        self.losses = []
+        if not any(entry.get("epoch") == epoch for entry in history):
+            history.append({"epoch": epoch, "loss": mean})
+
+
+class CountedLoader:
+    """``gen.loader``: the rebuilt training loader, counting its passes and batches.
+
+    Everything else (``len``, ``dataset``, ``sampler``, ``batch_size``) is the loader's.
+    """
+
+    def __init__(self, loader: Any, passes: Passes, history: list[EpochEntry]) -> None:
+        self.loader = loader
+        self.passes = passes
+        self.history = history
+
+    def __len__(self) -> int:
+        return len(self.loader)
+
+    def __getattr__(self, name: str) -> Any:
+        if name in ("loader", "passes", "history"):
+            raise AttributeError(name)
+        return getattr(self.loader, name)
+
+    def __iter__(self) -> Iterator[Any]:
+        passes = self.passes
+        passes.begin(self.history)
+        for batch in self.loader:
+            passes.batches += 1
+            yield batch
+
+
 class Generation:
     """One generation of a lineage. ``index`` 0 learns from labels; later ones from a teacher.
 
@@ -108,7 +166,8 @@ class Generation:
         self._inputs = inputs
         self._conclude = conclude
         self._observer = observer or Observer()
-        self._loader: DataLoader | OnlineTeacherLoader | None = None
+        self._loader: CountedLoader | None = None
+        self._passes = Passes()
         self._started = time.perf_counter()
 
     @property
@@ -120,28 +179,33 @@ class Generation:
         return self.record is not None
 
     @property
-    def loader(self) -> DataLoader | OnlineTeacherLoader:
+    def loader(self) -> CountedLoader:
         """The user's training loader, rebuilt to yield ``(inputs, labels, targets)``."""
         if self._loader is None:
             inputs = self._inputs
+            wrapped: DataLoader | OnlineTeacherLoader
             if self.online_teacher is not None:
                 plain = training_loader(inputs.train_loader, None)
-                self._loader = OnlineTeacherLoader(plain, self.online_teacher, self.model)
+                wrapped = OnlineTeacherLoader(plain, self.online_teacher, self.model)
             else:
                 # A student reads cached targets, so its samples are replayed; generation 0
                 # (no store) trains on the user's own random augmentation.
                 replay = inputs.replay if self.store is not None else None
                 choice = stream_seed(inputs.seed, Stream.VIEWS, self.index)
-                self._loader = training_loader(
+                wrapped = training_loader(
                     inputs.train_loader, self.store, replay, choice_seed=choice
                 )
+            self._loader = CountedLoader(wrapped, self._passes, self.history)
         return self._loader
 
     def loss(
         self, outputs: torch.Tensor, labels: torch.Tensor, targets: torch.Tensor | None
     ) -> torch.Tensor:
-        """The generation's training loss; ``targets`` is None in generation 0."""
-        return self._inputs.loss(outputs, labels, targets)
+        """The generation's training loss; ``targets`` is None in generation 0. Each value is
+        also kept (detached) for the pass's mean loss in the record."""
+        loss = self._inputs.loss(outputs, labels, targets)
+        self._passes.losses.append(loss.detach())
+        return loss
 
     def log_epoch(self, epoch: int, **scalars: float) -> None:
         """Record per-epoch scalars (``loss=...``); they go into the generation's record."""
@@ -159,6 +223,7 @@ class Generation:
         inputs = self._inputs
         if inputs.check_finished is not None:
             inputs.check_finished(model, self.index)
+        self._passes.close(self.history)
         seed = stream_seed(inputs.seed, Stream.PASSES, self.index)
         fault = f"gen{self.index}" if armed("teacher") else None
         # Every rank takes part in the passes (each scores its shard); only rank 0 gets them.
@@ -211,7 +276,9 @@ class Generation:
             loss = inputs.loss
             record.update(target_statistics(loss.kind, loss.temperature, train))
         self._save(model, passed, heldout, record)
-        record["epochs"] = list(self.history)
+        record["epochs"] = sorted(self.history, key=lambda entry: entry["epoch"])
+        record["passes"] = self._passes.count  # over gen.loader, by the user's loop or fit
+        record["batches"] = self._passes.batches
         record["seconds"] = time.perf_counter() - self._started
         return Measured(record, heldout)
 

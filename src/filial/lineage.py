@@ -212,7 +212,7 @@ class Lineage:
             self._check_ranks(train_loader)
         self._state.open(fresh)
         if self._state.resumed:
-            self._observers.resumed(self._run.root, self._state.records)
+            self._observers.resumed(self._run.root, self._state.records, self._state.decision)
 
     def _observers_for(
         self, progress: bool, tensorboard: bool | str | Path, extra: Sequence[Observer]
@@ -396,6 +396,8 @@ class Lineage:
             if gen.teacher is not None:
                 record["agreement"] = self._heldout.agreement(gen.teacher, heldout)
             self._teachers.fresh = TargetStore(gen.directory)
+        if self._state.resumed:
+            _warn_about_other_passes(records, record)
         decision = self.rule.decide([*records, record])
         if decision.stop:
             record["stop"] = {"reason": decision.reason, "best": decision.best, **decision.detail}  # type: ignore[typeddict-item]
@@ -408,6 +410,25 @@ class Lineage:
         self._state.commit(record, state)
         self._observers.generation_ended(record, self._state.records, state)
         return record
+
+
+def _warn_about_other_passes(records: list[GenerationRecord], newest: GenerationRecord) -> None:
+    """After a resume the lineage cannot see the user's loop: say when a new generation trained
+    a different number of passes over ``gen.loader`` than the earlier ones all did."""
+    earlier = {r.get("passes") for r in records}
+    if len(earlier) != 1 or None in earlier or newest.get("passes") in earlier:
+        return
+    (passes,) = earlier
+    log.warning(
+        "generation %d trained %s passes over gen.loader, generations %d-%d trained %s each: "
+        "after a resume filial cannot see your loop, so check that it trains as before (the "
+        "generations are compared as if it did)",
+        newest["generation"],
+        newest.get("passes"),
+        records[0]["generation"],
+        records[-1]["generation"],
+        passes,
+    )
 
 
 def _online(settings: Settings) -> bool:

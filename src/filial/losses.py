@@ -32,6 +32,12 @@ import torch.nn.functional as F
 from .errors import InputError
 
 LOSS_KINDS = ("ce", "l2")
+# Scalar regression: a model ending in .squeeze() returns (batch,); filial needs the column.
+ONE_OUTPUT_HINT = (
+    ". For one output per sample (scalar regression with targets='l2'), return shape "
+    "(batch, 1): end with nn.Linear(features, 1) and do not squeeze its output; the labels may "
+    "stay of shape (batch,)"
+)
 
 
 def squared_error(outputs: torch.Tensor, targets: torch.Tensor) -> torch.Tensor:
@@ -140,8 +146,11 @@ class StudentLoss:
         """Raise a clear error when labels and outputs cannot go together."""
         if not isinstance(outputs, torch.Tensor) or outputs.ndim != 2:
             shape = tuple(outputs.shape) if isinstance(outputs, torch.Tensor) else type(outputs)
+            squeezed = isinstance(outputs, torch.Tensor) and outputs.ndim == 1
+            hint = ONE_OUTPUT_HINT if squeezed else ""
             raise InputError(
-                f"the model must return a tensor of shape (batch, outputs), but returned {shape}"
+                f"the model must return a tensor of shape (batch, outputs), but returned "
+                f"{shape}{hint}"
             )
         if not isinstance(labels, torch.Tensor):
             raise InputError(f"labels must be a tensor, but the batch held {type(labels).__name__}")

@@ -18,7 +18,7 @@ from torch import nn
 from .checkpoint import unwrap
 from .errors import InputError
 from .evaluation import probe_outputs
-from .losses import StudentLoss
+from .losses import ONE_OUTPUT_HINT, StudentLoss
 from .seeding import preserved_rng
 
 
@@ -60,8 +60,10 @@ class ModelChecks:
             ) from exc
         if not isinstance(outputs, torch.Tensor) or outputs.ndim != 2:
             found = tuple(outputs.shape) if isinstance(outputs, torch.Tensor) else type(outputs)
+            squeezed = isinstance(outputs, torch.Tensor) and outputs.ndim == 1
             raise InputError(
-                f"the model must return a tensor of shape (batch, outputs), but returned {found}"
+                f"the model must return a tensor of shape (batch, outputs), but returned "
+                f"{found}{ONE_OUTPUT_HINT if squeezed else ''}"
             )
         return outputs
 

@@ -32,8 +32,11 @@ class Observer:
     def attached(self, run_dir: Path, settings: dict[str, Any]) -> None:
         """The lineage is built: its run directory and its settings (``lineage.json``'s)."""
 
-    def resumed(self, run_dir: Path, records: Sequence[GenerationRecord]) -> None:
-        """An existing run directory is resumed after its last finished generation."""
+    def resumed(
+        self, run_dir: Path, records: Sequence[GenerationRecord], decision: DecisionState | None
+    ) -> None:
+        """An existing run directory is opened with finished generations (``decision`` says
+        whether the lineage had already stopped)."""
 
     def generation_started(self, index: int, teacher: int | None) -> None:
         """Generation ``index`` is handed out (``teacher``: its teacher's index)."""
@@ -63,9 +66,11 @@ class Observers(Observer):
         for observer in self.observers:
             observer.attached(run_dir, settings)
 
-    def resumed(self, run_dir: Path, records: Sequence[GenerationRecord]) -> None:
+    def resumed(
+        self, run_dir: Path, records: Sequence[GenerationRecord], decision: DecisionState | None
+    ) -> None:
         for observer in self.observers:
-            observer.resumed(run_dir, records)
+            observer.resumed(run_dir, records, decision)
 
     def generation_started(self, index: int, teacher: int | None) -> None:
         for observer in self.observers:
@@ -105,8 +110,16 @@ class ConsoleProgress(Observer):
     def say(self, line: str) -> None:
         tqdm.write(f"filial: {line}", file=sys.stderr)
 
-    def resumed(self, run_dir: Path, records: Sequence[GenerationRecord]) -> None:
-        if records:
+    def resumed(
+        self, run_dir: Path, records: Sequence[GenerationRecord], decision: DecisionState | None
+    ) -> None:
+        if decision and decision["stop"]:
+            self.say(
+                f"{run_dir} is already finished ({decision['reason']} after generation "
+                f"{records[-1]['generation']}; kept generation {decision['best']}): nothing to "
+                "train"
+            )
+        elif records:
             self.say(f"resuming {run_dir} after generation {records[-1]['generation']}")
 
     def generation_ended(

@@ -27,7 +27,7 @@ DataLoaders (or a dict with those keys); the model factory returns a fresh ``nn.
 
     [generations]
     targets = "ce"
-    max = 6
+    max_generations = 6           # generations after generation 0: at most 7 models
 
 Unknown keys, wrong types and keyword arguments a factory does not take are refused by name.
 ``--set section.key=value`` overrides any key (the value is read as TOML, else as a string).
@@ -152,7 +152,9 @@ _SCHEMA: dict[str, dict[str, Field]] = {
         "targets": Field("choice", "ce", LOSS_KINDS),
         "temperature": Field("float", 1.0),
         "label_weight": Field("float", 0.0),
-        "max": Field("int", 6, minimum=0),
+        "max_generations": Field(
+            "int", 6, minimum=0, help="generations after generation 0 (so at most this + 1 models)"
+        ),
         "patience": Field("int", 2, minimum=1),
         "min_gain": Field("float", 0.0, minimum=0.0),
         "views": Field(
@@ -466,8 +468,10 @@ class Recipe:
         return factory, entries
 
     def comparable(self) -> dict[str, dict[str, Any]]:
-        """The values that decide a run's results (not where it is written)."""
+        """The values that decide a run's results (not where it is written); keys saved under
+        an old name count under the new one."""
         values = copy.deepcopy(self.values)
+        _renamed(values, "saved")
         values["run"].pop("run_dir", None)
         values["training"].pop("device", None)  # where it trains; a run may move on resume
         return values
@@ -513,6 +517,27 @@ def _toml_value(value: Any) -> str:
     )
 
 
+# Keys renamed since recipes were first saved: old name -> new name, by section. An old name
+# is still read (a saved recipe.toml of an earlier run must still compare equal on resume).
+RENAMED = {"generations": {"max": "max_generations"}}
+
+
+def _renamed(raw: dict[str, Any], where: str) -> None:
+    """Rename old keys in place; refuse a recipe that sets both names of one key."""
+    for section, names in RENAMED.items():
+        table = raw.get(section)
+        if not isinstance(table, dict):
+            continue
+        for old, new in names.items():
+            if old in table and new in table:
+                raise RecipeError(
+                    f"{section}.{old} is the old name of {section}.{new}, and the recipe ({where}) "
+                    f"sets both; keep {section}.{new}"
+                )
+            if old in table:
+                table[new] = table.pop(old)
+
+
 def resolve(
     raw: dict[str, Any], overrides: Sequence[str] = (), source: Path | None = None
 ) -> Recipe:
@@ -522,6 +547,7 @@ def resolve(
             for key, value in given.items():
                 check_values(f"{section}.{key}", value)
     raw = copy.deepcopy(raw)
+    _renamed(raw, "file")
     for text in overrides:
         section, key, value = parse_override(text)
         if section not in SECTIONS:
@@ -529,6 +555,7 @@ def resolve(
                 f"--set {section}.{key}: unknown section {section!r} "
                 f"(sections: {', '.join(SECTIONS)})"
             )
+        key = RENAMED.get(section, {}).get(key, key)  # --set generations.max=3 still works
         raw.setdefault(section, {})[key] = value
     unknown = [s for s in raw if s not in SECTIONS]
     if unknown:

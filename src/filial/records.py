@@ -59,6 +59,8 @@ class GenerationRecord(TypedDict):
     checkpoint: str  # relative to the run directory: genG/student.pt
     checkpoint_sha256: str
     epochs: list[EpochEntry]
+    passes: NotRequired[int]  # passes over gen.loader (records of earlier versions lack them)
+    batches: NotRequired[int]
     seconds: float
     stop: NotRequired[StopDetail]
 

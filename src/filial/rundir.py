@@ -37,8 +37,8 @@ from pathlib import Path
 from typing import Any
 
 from . import distributed
-from ._io import LockedError, RunLock, atomic_write_json, is_temporary, sweep_temporaries
-from .errors import InputError
+from ._io import RunLock, atomic_write_json, is_temporary, sweep_temporaries
+from .errors import InputError, LockedError
 from .records import DecisionState, GenerationRecord
 from .settings import differences
 
@@ -126,7 +126,7 @@ class Claim:
 
 
 def claim(directory: Path) -> Claim:
-    """Make ``directory`` if needed, lock it (:class:`~filial._io.LockedError` if a live
+    """Make ``directory`` if needed, lock it (:class:`~filial.errors.LockedError` if a live
     process holds it) and sweep the temporaries of processes that died there."""
     created = not directory.exists()
     try:
