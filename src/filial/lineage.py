@@ -431,16 +431,7 @@ def _warn_about_other_passes(records: list[GenerationRecord], newest: Generation
     )
 
 
-def _online(settings: Settings) -> bool:
-    return settings.teacher_mode == "online"
-
-
-def _checked_arguments(
-    model_fn: Any, loaders: tuple[Any, Any, Any], metric: Any, given: dict[str, Any]
-) -> tuple[Settings, Probe, Probe]:
-    """Check every argument, then the data's first samples; raise all problems together."""
-    train_loader, heldout_loader, test_loader = loaders
-    problems = Problems()
+def _check_callables(problems: Problems, model_fn: Any, metric: Any) -> None:
     if isinstance(model_fn, nn.Module):
         problems.add(
             TypeError(
@@ -451,6 +442,12 @@ def _checked_arguments(
         )
     elif not callable(model_fn):
         problems.add(TypeError(f"model_fn must be callable, but got {model_fn!r}"))
+    if metric is not None and not callable(metric):
+        problems.add(TypeError(f"metric must be callable or None, but got {metric!r}"))
+
+
+def _check_loaders(problems: Problems, loaders: tuple[Any, Any, Any]) -> None:
+    train_loader, heldout_loader, _ = loaders
     roles = ("train_loader", "heldout_loader", "test_loader")
     for role, loader in zip(roles, loaders, strict=True):
         if loader is not None or role != "test_loader":
@@ -467,9 +464,21 @@ def _checked_arguments(
                 "Split off a held-out set, e.g. with torch.utils.data.random_split."
             )
         )
+
+
+def _online(settings: Settings) -> bool:
+    return settings.teacher_mode == "online"
+
+
+def _checked_arguments(
+    model_fn: Any, loaders: tuple[Any, Any, Any], metric: Any, given: dict[str, Any]
+) -> tuple[Settings, Probe, Probe]:
+    """Check every argument, then the data's first samples; raise all problems together."""
+    train_loader, heldout_loader, _ = loaders
+    problems = Problems()
+    _check_callables(problems, model_fn, metric)
+    _check_loaders(problems, loaders)
     settings = Settings.parse(problems, **given)
-    if metric is not None and not callable(metric):
-        problems.add(TypeError(f"metric must be callable or None, but got {metric!r}"))
     train = heldout = None
     if not len(problems):
         train = problems.attempt(lambda: probe(train_loader))

@@ -213,20 +213,24 @@ def read_state(path: Path, hint: str = "") -> dict[str, Any]:
         check_record(path, record, f"records[{i}].", i)
     decision = top.get("decision", "dict", "null", required=False)
     if decision is not None:
-        fields = _Checker(path, decision, "decision.")
-        fields.get("stop", "bool")
-        reason = fields.get("reason", "str", "null")
-        if reason is not None and reason not in STOP_REASONS:
-            raise fields.fail("reason", " or ".join(repr(r) for r in STOP_REASONS), reason)
-        best = fields.get("best", "int", "null")
-        if best is not None:
-            if not 0 <= best < len(records):
-                span = f"0..{len(records) - 1}" if records else "null (there are no records)"
-                raise fields.fail("best", f"a finished generation, {span}", best)
-            if records[best].get("diverged"):
-                raise fields.fail("best", "a generation that did not diverge", best)
-        fields.get("detail", "dict", "null", required=False)
+        _check_decision(path, decision, records)
     return state
+
+
+def _check_decision(path: Path, decision: dict[str, Any], records: list[Any]) -> None:
+    fields = _Checker(path, decision, "decision.")
+    fields.get("stop", "bool")
+    reason = fields.get("reason", "str", "null")
+    if reason is not None and reason not in STOP_REASONS:
+        raise fields.fail("reason", " or ".join(repr(r) for r in STOP_REASONS), reason)
+    best = fields.get("best", "int", "null")
+    if best is not None:
+        if not 0 <= best < len(records):
+            span = f"0..{len(records) - 1}" if records else "null (there are no records)"
+            raise fields.fail("best", f"a finished generation, {span}", best)
+        if records[best].get("diverged"):
+            raise fields.fail("best", "a generation that did not diverge", best)
+    fields.get("detail", "dict", "null", required=False)
 
 
 def read_baseline(path: Path) -> dict[str, Any]:

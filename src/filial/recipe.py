@@ -180,37 +180,45 @@ def _describe(value: Any) -> str:
     return f"{value!r} ({type(value).__name__})"
 
 
-def _check_field(name: str, field: Field, value: Any) -> Any:
-    if field.kind == "int":
-        if not isinstance(value, int) or isinstance(value, bool):
-            raise RecipeError(f"{name} should be an integer, but got {_describe(value)}")
-    elif field.kind == "float":
+def _check_kind(name: str, field: Field, value: Any) -> Any:
+    """``value`` if it is of the field's kind (floats come back as float)."""
+    if field.kind == "int" and (not isinstance(value, int) or isinstance(value, bool)):
+        raise RecipeError(f"{name} should be an integer, but got {_describe(value)}")
+    if field.kind == "float":
         if not isinstance(value, (int, float)) or isinstance(value, bool):
             raise RecipeError(f"{name} should be a number, but got {_describe(value)}")
         if not math.isfinite(value):
             raise RecipeError(f"{name} should be a finite number, but got {value!r}")
-        value = float(value)
-    elif field.kind == "str":
-        if not isinstance(value, str):
-            raise RecipeError(f"{name} should be a string, but got {_describe(value)}")
-    elif field.kind == "choice":
-        if value not in field.choices:
-            options = ", ".join(repr(c) for c in field.choices)
-            raise RecipeError(f"{name} should be one of {options}, but got {_describe(value)}")
-    elif field.kind == "seeds":
-        if (
-            not isinstance(value, list)
-            or not value
-            or not all(isinstance(s, int) and not isinstance(s, bool) and s >= 0 for s in value)
-        ):
-            raise RecipeError(
-                f"{name} should be a non-empty list of integers >= 0, but got {_describe(value)}"
-            )
-        if len(set(value)) != len(value):
-            raise RecipeError(f"{name} lists a seed twice: {value!r}")
-    if field.minimum is not None and isinstance(value, (int, float)) and value < field.minimum:
+        return float(value)
+    if field.kind == "str" and not isinstance(value, str):
+        raise RecipeError(f"{name} should be a string, but got {_describe(value)}")
+    if field.kind == "choice" and value not in field.choices:
+        options = ", ".join(repr(c) for c in field.choices)
+        raise RecipeError(f"{name} should be one of {options}, but got {_describe(value)}")
+    if field.kind == "seeds":
+        _check_seeds(name, value)
+    return value
+
+
+def _check_seeds(name: str, value: Any) -> None:
+    if (
+        not isinstance(value, list)
+        or not value
+        or not all(isinstance(s, int) and not isinstance(s, bool) and s >= 0 for s in value)
+    ):
+        raise RecipeError(
+            f"{name} should be a non-empty list of integers >= 0, but got {_describe(value)}"
+        )
+    if len(set(value)) != len(value):
+        raise RecipeError(f"{name} lists a seed twice: {value!r}")
+
+
+def _check_field(name: str, field: Field, value: Any) -> Any:
+    value = _check_kind(name, field, value)
+    number = isinstance(value, (int, float)) and not isinstance(value, bool)
+    if field.minimum is not None and number and value < field.minimum:
         raise RecipeError(f"{name} should be >= {field.minimum:g}, but got {value!r}")
-    if field.maximum is not None and isinstance(value, (int, float)) and value > field.maximum:
+    if field.maximum is not None and number and value > field.maximum:
         raise RecipeError(
             f"{name} should be <= {field.maximum:g} ({field.why_maximum}), but got {value!r}"
         )
@@ -546,57 +554,14 @@ def resolve(
         if isinstance(given, dict):
             for key, value in given.items():
                 check_values(f"{section}.{key}", value)
-    raw = copy.deepcopy(raw)
-    _renamed(raw, "file")
-    for text in overrides:
-        section, key, value = parse_override(text)
-        if section not in SECTIONS:
-            raise RecipeError(
-                f"--set {section}.{key}: unknown section {section!r} "
-                f"(sections: {', '.join(SECTIONS)})"
-            )
-        key = RENAMED.get(section, {}).get(key, key)  # --set generations.max=3 still works
-        raw.setdefault(section, {})[key] = value
+    raw = _overridden(raw, overrides)
     unknown = [s for s in raw if s not in SECTIONS]
     if unknown:
         raise RecipeError(
             f"unknown section [{unknown[0]}]; a recipe has the sections {', '.join(SECTIONS)}"
         )
-    values: dict[str, dict[str, Any]] = {}
-    for section in SECTIONS:
-        given = raw.get(section, {})
-        if not isinstance(given, dict):
-            raise RecipeError(f"[{section}] should be a table, but got {_describe(given)}")
-        if section in _FACTORY_SECTIONS:
-            if "factory" not in given:
-                raise RecipeError(
-                    f"[{section}] needs factory = 'package.module:function'"
-                    + (" (e.g. 'filial.demo:mail_room_loaders')" if section == "data" else "")
-                )
-            values[section] = dict(given)
-            continue
-        schema = _SCHEMA[section]
-        for key in given:
-            if key not in schema:
-                raise RecipeError(
-                    f"{section}.{key} is not a recipe key; [{section}] takes {', '.join(schema)}"
-                )
-        values[section] = {
-            key: _check_field(f"{section}.{key}", field, given.get(key, field.default))
-            for key, field in schema.items()
-        }
-    training = values["training"]
-    if training["optimizer"] != "sgd" and "momentum" in raw.get("training", {}):
-        raise RecipeError(
-            f"training.momentum applies to optimizer = 'sgd' only, but optimizer = "
-            f"{training['optimizer']!r}; remove training.momentum"
-        )
-    if not _NAME.fullmatch(values["run"]["name"]):
-        raise RecipeError(
-            f"run.name should be a plain name (letters, digits, '.', '_', '-'; no path), but got "
-            f"{values['run']['name']!r}: it becomes a folder under runs/. Set run.run_dir for a "
-            "path."
-        )
+    values = {section: _section(section, raw.get(section, {})) for section in SECTIONS}
+    _check_across(values, raw)
     if not values["run"]["run_dir"]:
         values["run"]["run_dir"] = os.path.join("runs", values["run"]["name"])
     recipe = Recipe(values, source)
@@ -610,6 +575,61 @@ def resolve(
             + "; ".join(differences(values, back))
         )
     return recipe
+
+
+def _overridden(raw: dict[str, Any], overrides: Sequence[str]) -> dict[str, Any]:
+    """A copy of ``raw`` with old key names renamed and the ``--set`` overrides applied."""
+    raw = copy.deepcopy(raw)
+    _renamed(raw, "file")
+    for text in overrides:
+        section, key, value = parse_override(text)
+        if section not in SECTIONS:
+            raise RecipeError(
+                f"--set {section}.{key}: unknown section {section!r} "
+                f"(sections: {', '.join(SECTIONS)})"
+            )
+        key = RENAMED.get(section, {}).get(key, key)  # --set generations.max=3 still works
+        raw.setdefault(section, {})[key] = value
+    return raw
+
+
+def _section(section: str, given: Any) -> dict[str, Any]:
+    """One section checked: a factory section as given, the others against the schema."""
+    if not isinstance(given, dict):
+        raise RecipeError(f"[{section}] should be a table, but got {_describe(given)}")
+    if section in _FACTORY_SECTIONS:
+        if "factory" not in given:
+            raise RecipeError(
+                f"[{section}] needs factory = 'package.module:function'"
+                + (" (e.g. 'filial.demo:mail_room_loaders')" if section == "data" else "")
+            )
+        return dict(given)
+    schema = _SCHEMA[section]
+    for key in given:
+        if key not in schema:
+            raise RecipeError(
+                f"{section}.{key} is not a recipe key; [{section}] takes {', '.join(schema)}"
+            )
+    return {
+        key: _check_field(f"{section}.{key}", field, given.get(key, field.default))
+        for key, field in schema.items()
+    }
+
+
+def _check_across(values: dict[str, dict[str, Any]], raw: dict[str, Any]) -> None:
+    """The checks that involve several keys."""
+    training = values["training"]
+    if training["optimizer"] != "sgd" and "momentum" in raw.get("training", {}):
+        raise RecipeError(
+            f"training.momentum applies to optimizer = 'sgd' only, but optimizer = "
+            f"{training['optimizer']!r}; remove training.momentum"
+        )
+    if not _NAME.fullmatch(values["run"]["name"]):
+        raise RecipeError(
+            f"run.name should be a plain name (letters, digits, '.', '_', '-'; no path), but got "
+            f"{values['run']['name']!r}: it becomes a folder under runs/. Set run.run_dir for a "
+            "path."
+        )
 
 
 def load(path: str | os.PathLike[str], overrides: Sequence[str] = ()) -> Recipe:

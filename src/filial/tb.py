@@ -261,20 +261,7 @@ def compare(views: Sequence[SeedView], key: str = "heldout") -> Comparison | Non
 
     kept = [at(row, v.kept) for v, row in zip(views, values, strict=True)]
     firsts = [first(row) for row in values]
-    baselines: dict[str, tuple[Band, Band | None]] = {}
-    names = sorted({name for v in views for name in v.baselines})
-    for name in names:
-        level, lift = [], []
-        for v, row in zip(views, values, strict=True):
-            base = (v.baselines.get(name) or {}).get(key)
-            start = first(row)
-            if is_number(base):
-                level.append(base)
-                if start is not None:
-                    lift.append(base - start)
-        band = Band.of(level)
-        if band is not None:
-            baselines[name] = (band, Band.of(lift))
+    baselines = _baseline_bands(views, firsts, key)
     return Comparison(
         key=key,
         seeds=len(views),
@@ -290,6 +277,25 @@ def compare(views: Sequence[SeedView], key: str = "heldout") -> Comparison | Non
         baselines=baselines,
         per_seed=[(v.seed, row, v.kept) for v, row in zip(views, values, strict=True)],
     )
+
+
+def _baseline_bands(
+    views: Sequence[SeedView], firsts: list[float | None], key: str
+) -> dict[str, tuple[Band, Band | None]]:
+    """Each baseline's level over seeds, and its lift over generation 0 (paired per seed)."""
+    bands: dict[str, tuple[Band, Band | None]] = {}
+    for name in sorted({name for v in views for name in v.baselines}):
+        level, lift = [], []
+        for v, start in zip(views, firsts, strict=True):
+            base = (v.baselines.get(name) or {}).get(key)
+            if is_number(base):
+                level.append(base)
+                if start is not None:
+                    lift.append(base - start)
+        band = Band.of(level)
+        if band is not None:
+            bands[name] = (band, Band.of(lift))
+    return bands
 
 
 def _difference(a: float | None, b: float | None) -> float | None:
@@ -365,8 +371,14 @@ def _write_comparison(runs: dict[str, SummaryWriter], c: Comparison) -> None:
     for name, (level, _) in c.baselines.items():
         for step in c.steps:
             _band_tags(runs[baseline_run(name)], every, level, step, spread)
-    if c.key != "heldout":
-        return
+    if c.key == "heldout":
+        _write_gains(runs, c)
+
+
+def _write_gains(runs: dict[str, SummaryWriter], c: Comparison) -> None:
+    """The answer charts: the held-out gain over generation 0, with generations and for each
+    baseline, against generation 0 alone's 0 line."""
+    with_run, alone_run = runs[WITH], runs[ALONE]
     zero = Band(0.0, 0.0, c.seeds)
     for arm in [ALONE, *(baseline_run(n) for n in c.baselines)]:
         tag = _answer_tag(arm)
