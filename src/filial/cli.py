@@ -12,6 +12,13 @@ another process (the message names the key or the problem; a run directory this 
 removed, and finished generations of an earlier run are kept as they were); 1 a failure during
 the run (finished generations are kept); 130 interrupted (the run directory is resumable, and
 the message says how).
+
+Under ``torchrun`` (``torchrun --nproc-per-node=N -m filial run RECIPE``) every process runs the
+command: it joins the process group (gloo on the CPU, nccl when training on CUDA, each process
+on ``cuda:LOCAL_RANK``), gives the recipe's training loader a ``DistributedSampler`` and each
+process ``batch_size / N`` samples per step (:func:`filial.data.sharded_loader`), and rank 0
+alone locks and writes the run directory, prints progress and the report; the lineages
+coordinate the rest (see :mod:`filial.distributed`).
 """
 
 from __future__ import annotations
@@ -19,6 +26,7 @@ from __future__ import annotations
 import argparse
 import functools
 import json
+import os
 import shlex
 import shutil
 import sys
@@ -28,13 +36,16 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
 
+import torch
 from torch import nn
 from torch.utils.data import DataLoader
 from tqdm.auto import tqdm
 
+from . import distributed
 from . import recipe as recipes
 from ._io import LockedError, atomic_write
-from .data import check_loader
+from .data import check_loader, sharded_loader
+from .distributed import RankZeroFailed
 from .errors import InputError, Problems
 from .fit import EpochFit, fit_epochs
 from .lineage import Lineage
@@ -195,16 +206,22 @@ def _lineage(
     )
 
 
-def _train(p: Plan, run: RecipeRunDirectory, lineages: list[Lineage], on_terminal: bool) -> None:
+def _train(
+    p: Plan,
+    run: RecipeRunDirectory,
+    lineages: list[Lineage],
+    on_terminal: bool,
+    device: torch.device,
+) -> None:
     training = p.recipe["training"]
     optimizer = recipes.build_optimizer(training)
-    device = recipes.training_device(training)
 
     def make_fit(count: int) -> EpochFit:
         scheduler = recipes.build_scheduler(training, count)
         return fit_epochs(count, optimizer, scheduler, progress=on_terminal, device=device)
 
     fit = make_fit(training["epochs"])
+    on_terminal = on_terminal and distributed.is_main()
     for lineage in lineages:
         seed = lineage.settings["seed"]
         # On a terminal: a bar for the generations and one for the epochs, cleared when done;
@@ -225,7 +242,7 @@ def _train(p: Plan, run: RecipeRunDirectory, lineages: list[Lineage], on_termina
         bar.close()
         if p.recipe["run"]["baseline"] == "matched" and lineage.result.best is not None:
             lineage.matched_baseline(make_fit)
-    if len(lineages) > 1:
+    if len(lineages) > 1 and distributed.is_main():
         depth = max(len(x.result.records) for x in lineages)
         means: list[float | None] = []
         stds: list[float | None] = []
@@ -243,25 +260,59 @@ def _resume_command(argv: Sequence[str]) -> str:
     return "filial " + shlex.join(kept)
 
 
+@dataclass
+class Launch:
+    """How this process runs the command: alone, or as one rank of a ``torchrun`` launch."""
+
+    device: torch.device  # where the students train
+    started: bool  # this command initialised the process group (and ends it)
+
+
+def _launch(p: Plan) -> Launch:
+    """Join the process group when ``torchrun`` started this process (its environment is set
+    and no group exists yet): gloo for CPU training, nccl for CUDA, on ``cuda:LOCAL_RANK``."""
+    device = recipes.training_device(p.recipe["training"])
+    dist = torch.distributed
+    if not dist.is_available() or not dist.is_torchelastic_launched() or dist.is_initialized():
+        return Launch(device, False)
+    if device.type == "cuda":
+        device = torch.device("cuda", int(os.environ.get("LOCAL_RANK", "0")))
+        torch.cuda.set_device(device)
+    dist.init_process_group("nccl" if device.type == "cuda" else "gloo")
+    return Launch(device, True)
+
+
 def _open(
-    args: argparse.Namespace, quiet: bool
-) -> tuple[Plan, RecipeRunDirectory, Claim, list[Lineage]]:
-    """Check the recipe, lock the run directory, build one Lineage per seed (each checks its
-    data and model before it touches its folder and, with ``--fresh``, clears it); then remove
-    the rest of an earlier run and save the recipe. On a refusal nothing is left behind: the
-    locks are released and a run directory made here is removed."""
+    p: Plan, args: argparse.Namespace, quiet: bool
+) -> tuple[RecipeRunDirectory, Claim | None, list[Lineage]]:
+    """Lock the run directory, build one Lineage per seed (each checks its data and model
+    before it touches its folder and, with ``--fresh``, clears it); then remove the rest of an
+    earlier run and save the recipe. On a refusal nothing is left behind: the locks are
+    released and a run directory made here is removed.
+
+    Note: several processes. Rank 0 alone checks and locks the run directory, clears an earlier
+    run and saves the recipe (the other ranks wait, and raise :class:`RankZeroFailed` if it
+    fails); every rank builds the lineages, which coordinate themselves."""
     taken: Claim | None = None
     lineages: list[Lineage] = []
+    run = RecipeRunDirectory(p.recipe["run"]["run_dir"])
     try:
-        p = plan(args.recipe, args.set, args.run_dir)
-        run, taken = _prepare_run_dir(p.recipe, args.fresh)
+        prepared = distributed.on_rank_zero(
+            lambda: _prepare_run_dir(p.recipe, args.fresh), f"opening the run directory {run.root}"
+        )
+        if prepared is not None:
+            run, taken = prepared
         seeds = p.recipe["run"]["seeds"]
         for s in seeds:
             lineages.append(_lineage(p, run, s, quiet=quiet, fresh=args.fresh))
-        if args.fresh:
-            _start_over(run, seeds)
-        if args.fresh or not run.recipe_path.is_file():
-            _save_recipe(p.recipe, run)
+
+        def finish_opening() -> None:
+            if args.fresh:
+                _start_over(run, seeds)
+            if args.fresh or not run.recipe_path.is_file():
+                _save_recipe(p.recipe, run)
+
+        distributed.on_rank_zero(finish_opening, f"saving the recipe in {run.root}")
     except BaseException:
         for lineage in lineages:
             lineage.close()
@@ -270,47 +321,82 @@ def _open(
             if taken.created:
                 shutil.rmtree(taken.directory, ignore_errors=True)
         raise
-    return p, run, taken, lineages
+    return run, taken, lineages
+
+
+def _say(message: str) -> None:
+    """An error on stderr: rank 0's plainly, another rank's with its rank (every rank says
+    what stopped it; the report and the resume command come from rank 0)."""
+    if not distributed.is_main():
+        message = message.replace("filial: ", f"filial (rank {distributed.rank()}): ", 1)
+    print(message, file=sys.stderr)
 
 
 def _run(args: argparse.Namespace, argv: Sequence[str]) -> int:
-    on_terminal = sys.stderr.isatty()
+    launch: Launch | None = None
     try:
-        p, run, taken, lineages = _open(args, quiet=on_terminal)
-    except (recipes.RecipeError, InputError, LockedError, ValueError, TypeError) as exc:
-        print(f"filial: {exc}", file=sys.stderr)
+        p = plan(args.recipe, args.set, args.run_dir)
+        launch = _launch(p)
+        if distributed.is_distributed():
+            p.train = sharded_loader(p.train, distributed.world_size(), distributed.rank())
+        on_terminal = sys.stderr.isatty() and distributed.is_main()
+        run, taken, lineages = _open(p, args, quiet=on_terminal)
+    except (
+        recipes.RecipeError,
+        InputError,
+        LockedError,
+        ValueError,
+        TypeError,
+        RankZeroFailed,
+    ) as exc:
+        _say(f"filial: {exc}")
+        _end(launch, wait=False)
         return EXIT_USAGE
     resume = _resume_command(argv)
+    done = False
     try:
-        _train(p, run, lineages, on_terminal)
+        _train(p, run, lineages, on_terminal, launch.device)
+        done = True
     except InputError as exc:  # found while running (e.g. a model whose width changes)
-        print(
+        _say(
             f"\nfilial: {exc}\nFinished generations are kept in {run.root}; fix the input and "
-            f"rerun\n  {resume}",
-            file=sys.stderr,
+            f"rerun\n  {resume}"
         )
         return EXIT_USAGE
     except KeyboardInterrupt:
-        print(
+        _say(
             f"\nfilial: interrupted. {run.root} keeps every finished generation; resume with:\n"
-            f"  {resume}",
-            file=sys.stderr,
+            f"  {resume}"
         )
         return EXIT_INTERRUPTED
     except Exception as exc:  # report, keep the run directory, exit 1
         traceback.print_exc(file=sys.stderr)
-        print(
+        _say(
             f"filial: the run failed: {type(exc).__name__}: {exc}\n"
-            f"Finished generations are kept in {run.root}; fix the cause and rerun\n  {resume}",
-            file=sys.stderr,
+            f"Finished generations are kept in {run.root}; fix the cause and rerun\n  {resume}"
         )
         return EXIT_FAILED
     finally:
         for lineage in lineages:
             lineage.close()
-        taken.release()
-    print(format_report(summarize(run.root)))
+        if taken is not None:
+            taken.release()
+        if not done:
+            _end(launch, wait=False)
+    if distributed.is_main():
+        print(format_report(summarize(run.root)))
+    _end(launch, wait=True)
     return EXIT_OK
+
+
+def _end(launch: Launch | None, wait: bool) -> None:
+    """Leave the process group this command joined; after a barrier when the run succeeded, so
+    that no rank leaves while another still reads what rank 0 wrote (never after a failure,
+    where another rank may be gone)."""
+    if launch is not None and launch.started and distributed.is_distributed():
+        if wait:
+            distributed.barrier()
+        torch.distributed.destroy_process_group()
 
 
 def _report(args: argparse.Namespace) -> int:
