@@ -52,12 +52,16 @@ class SummedMetric(Protocol):
     def from_sums(self, sums: Sequence[float]) -> float: ...
 
 
-class _AccuracySums:
+class AccuracySums:
     """:func:`accuracy` as sums: hits and rows (integers, so the total is exact and the value
     is the one :func:`accuracy` gives on the whole set)."""
 
     def batch_sums(self, outputs: torch.Tensor, labels: torch.Tensor) -> Sums:
-        hits = outputs.argmax(dim=1) == labels
+        return self.sums_of_predictions(outputs.argmax(dim=1), labels)
+
+    def sums_of_predictions(self, predicted: torch.Tensor, labels: torch.Tensor) -> Sums:
+        """The sums from the argmax of each row (for a caller that has it already)."""
+        hits = predicted == labels
         return [hits.sum(), hits.numel()]
 
     def from_sums(self, sums: Sequence[float]) -> float:
@@ -127,7 +131,7 @@ def summed_form(metric: Any) -> SummedMetric | None:
     none and needs the whole set at once."""
     inner = metric.metric if isinstance(metric, _FloatMetric) else metric
     if inner is accuracy:
-        return _AccuracySums()
+        return AccuracySums()
     if inner is negative_mse:
         return _SquaredErrorSums()
     if isinstance(inner, SummedMetric):  # has batch_sums and from_sums

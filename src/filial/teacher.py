@@ -34,7 +34,7 @@ from . import distributed
 from .checkpoint import load_model
 from .data import Replay
 from .evaluation import Predictions, model_device, move_to
-from .metrics import Metric, SummedMetric, summed_form
+from .metrics import AccuracySums, Metric, SummedMetric, summed_form
 from .passes import Consumer, stream_pass
 from .records import GenerationRecord
 from .rundir import RunDirectory
@@ -99,7 +99,10 @@ class Peak:
 
     def add(self, codes: np.ndarray, outputs: torch.Tensor, labels: torch.Tensor) -> None:
         if len(outputs):
-            peak = outputs.abs().amax()  # stays on the device: no synchronisation per batch
+            # One pass over the batch (aminmax propagates NaN), kept on the device: no
+            # synchronisation per batch.
+            low, high = torch.aminmax(outputs)
+            peak = torch.maximum(-low, high)
             self._peak = peak if self._peak is None else torch.maximum(self._peak, peak)
 
     def result(self) -> float:
@@ -239,14 +242,17 @@ class TrainingFigures:
         if not len(outputs):
             return
         if self.spec.kind == "ce":
-            logp = F.log_softmax(outputs / self.spec.temperature, dim=1)
-            self._spread = self._spread + (-(logp.exp() * logp).sum(dim=1)).double().sum()
+            scaled = outputs if self.spec.temperature == 1 else outputs / self.spec.temperature
+            logp = F.log_softmax(scaled, dim=1)
+            self._spread = self._spread - (logp.exp() * logp).sum(dim=1).double().sum()
         else:
             self._spread = self._spread + outputs.norm(dim=1).double().sum()
         self._rows += len(outputs)
+        predicted = None
         if self._classify:
             assert self._predicted is not None
-            self._predicted += torch.bincount(outputs.argmax(dim=1), minlength=self._width)
+            predicted = outputs.argmax(dim=1)
+            self._predicted += torch.bincount(predicted, minlength=self._width)
             counts = torch.bincount(labels.long().flatten())
             if len(counts) > len(self._labels):
                 grown = torch.zeros(len(counts), dtype=torch.int64)
@@ -254,7 +260,11 @@ class TrainingFigures:
                 self._labels = grown
             self._labels[: len(counts)] += counts
         if self.form is not None:
-            sums = self.form.batch_sums(outputs, labels.to(outputs.device, non_blocking=True))
+            labels = labels.to(outputs.device, non_blocking=True)
+            if predicted is not None and isinstance(self.form, AccuracySums):
+                sums = self.form.sums_of_predictions(predicted, labels)  # one argmax, not two
+            else:
+                sums = self.form.batch_sums(outputs, labels)
             self._sums = (
                 list(sums)
                 if self._sums is None
