@@ -15,10 +15,13 @@ memory is filial's own. Linux only (``/proc``).
 
 Kinds:
 
-``finish N --views V [--top-k K] [--world 2]``
+``finish N --views V [--top-k K] [--world 2] [--once]``
     extra peak RSS of ``gen.finish`` of generation 0 and 1 (no training), the time of each
     finish, and of a plain ``inference_mode`` loop over the same loader between them
-    (A B A B). ``--world 2``: two gloo ranks (spawned), each reporting its own figures.
+    (A B A B), in wall seconds and in CPU seconds of the process (on a machine shared with
+    other jobs the CPU time is the steadier figure). ``--world 2``: two gloo ranks (spawned),
+    each reporting its own figures. ``--once``: generation 0 only, without the plain loop (the
+    memory figure alone, for the largest sizes).
 ``write N``
     the time to write an N x 1000 float16 store from rows already made: the streamed writer
     batch by batch where it exists, else ``TargetStore.write`` of the whole array.
@@ -86,13 +89,14 @@ def linear() -> nn.Module:
     return nn.Linear(WIDTH, CLASSES)
 
 
-def plain_pass(model: nn.Module, loader: DataLoader) -> float:
+def plain_pass(model: nn.Module, loader: DataLoader) -> tuple[float, float]:
+    """Wall and CPU seconds (all threads of this process) of a plain inference loop."""
     model.eval()
-    start = time.perf_counter()
+    start, cpu = time.perf_counter(), time.process_time()
     with torch.inference_mode():
         for x, _ in loader:
             model(x)
-    return time.perf_counter() - start
+    return time.perf_counter() - start, time.process_time() - cpu
 
 
 def _finish_job(rank: int, world: int, args: argparse.Namespace, out: str) -> None:
@@ -117,20 +121,24 @@ def _finish_job(rank: int, world: int, args: argparse.Namespace, out: str) -> No
         views=args.views,
         top_k=args.top_k or None,
         store_dtype=args.dtype,
-        max_generations=1,
+        max_generations=0 if args.once else 1,
         patience=5,
         progress=False,
         tensorboard=False,
     )
     lineage.rule.collapsed = lambda record, first: None  # nothing is learnt here
     figures: dict[str, Any] = {"rank": rank, "world": world, "n": args.n, "views": args.views}
-    peaks, finishes, plains = [], [], []
+    peaks, finishes, plains, finish_cpu, plain_cpu = [], [], [], [], []
     for gen in lineage:
-        plains.append(plain_pass(gen.model, loader))
+        if not args.once:
+            wall, cpu = plain_pass(gen.model, loader)
+            plains.append(wall)
+            plain_cpu.append(cpu)
         before = reset_peak()
-        start = time.perf_counter()
+        start, cpu = time.perf_counter(), time.process_time()
         gen.finish(gen.model)
         finishes.append(time.perf_counter() - start)
+        finish_cpu.append(time.process_time() - cpu)
         peaks.append(status("VmHWM") - before)
         figures.setdefault("rss_before_kib", before)
     lineage.close()
@@ -140,6 +148,8 @@ def _finish_job(rank: int, world: int, args: argparse.Namespace, out: str) -> No
         extra_peak_kib_each=peaks,
         finish_s=finishes,
         plain_s=plains,
+        finish_cpu_s=finish_cpu,
+        plain_cpu_s=plain_cpu,
         store_bytes=sum(p.stat().st_size for p in store.glob("targets*.npy")),
     )
     if world > 1:
@@ -217,13 +227,17 @@ def replay(args: argparse.Namespace) -> Any:
                 model(x)
 
     plain(), ours()
-    times: dict[str, list[float]] = {"plain": [], "replayed": []}
+    times: dict[str, list[float]] = {"plain": [], "replayed": [], "plain_cpu": [], "cpu": []}
     for _ in range(args.repeats):
         for name, run in (("plain", plain), ("replayed", ours)):
-            start = time.perf_counter()
+            start, cpu = time.perf_counter(), time.process_time()
             run()
             times[name].append((time.perf_counter() - start) / args.n * 1e6)
+            times["plain_cpu" if name == "plain" else "cpu"].append(
+                (time.process_time() - cpu) / args.n * 1e6
+            )
     ratios = [r / p for r, p in zip(times["replayed"], times["plain"], strict=True)]
+    cpu_ratios = [r / p for r, p in zip(times["cpu"], times["plain_cpu"], strict=True)]
     return {
         "n": args.n,
         "plain_us_per_row": statistics.median(times["plain"]),
@@ -231,6 +245,7 @@ def replay(args: argparse.Namespace) -> Any:
         "ratio_median": statistics.median(ratios),
         "ratio_min": min(ratios),
         "ratio_max": max(ratios),
+        "cpu_ratio_median": statistics.median(cpu_ratios),
     }
 
 
@@ -245,6 +260,9 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--threads", type=int, default=2)
     parser.add_argument("--repeats", type=int, default=5)
     parser.add_argument("--work", default=None, help="folder for the temporary run directories")
+    parser.add_argument(
+        "--once", action="store_true", help="finish: generation 0 only, no plain loop (memory)"
+    )
     args = parser.parse_args(argv)
     result = {"finish": finish, "write": write, "replay": replay}[args.kind](args)
     import filial

@@ -26,11 +26,15 @@ methods (:class:`Consumer`):
 Example: a consumer that counts rows and sums the outputs of view 0 of every sample::
 
     class ViewZeroSum:
-        def __init__(self, views): self.views, self.total = views, 0.0
+        def __init__(self, views):
+            self.views, self.total = views, 0.0
         def add(self, codes, outputs, labels):
-            self.total += float(outputs[torch.from_numpy(codes % self.views == 0)].sum())
-        def result(self): return filial.distributed.all_sum([self.total])[0]
-        def abandon(self): pass
+            first = torch.from_numpy(codes % self.views == 0).to(outputs.device)
+            self.total = self.total + outputs[first].sum()  # stays on the device
+        def result(self):
+            return filial.distributed.all_sum([self.total])[0]
+        def abandon(self):
+            pass
 """
 
 from __future__ import annotations
