@@ -76,6 +76,23 @@ def test_padding_rows_are_the_samplers_repeats(size, world):
     assert all(i < size for i in repeated)
 
 
+@pytest.mark.parametrize(
+    ("size", "world"), [(7, 2), (8, 2), (10, 3), (1, 2), (5, 4), (2, 5), (1001, 7)]
+)
+def test_the_pass_shards_are_distributed_samplers_without_its_list(size, world):
+    """The passes' lazy shards give DistributedSampler's very order (its padding included),
+    and padding_rows marks the same positions on both."""
+    for rank in range(world):
+        torchs = DistributedSampler(range(size), num_replicas=world, rank=rank, shuffle=False)
+        lazy = distributed._InOrderShard(
+            range(size), num_replicas=world, rank=rank, shuffle=False, drop_last=False
+        )
+        assert list(lazy) == list(torchs) and len(lazy) == len(torchs)
+        positions = torch.arange(rank, torchs.total_size, world)
+        assert torch.equal(padding_rows(lazy), positions >= size)
+        assert padding_rows(lazy)[: distributed.padding_start(lazy)].logical_not().all()
+
+
 def test_odd_dataset_with_padding_gives_each_index_once():
     size, world = 7, 2
     indices, outputs, labels = [], [], []

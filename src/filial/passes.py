@@ -74,7 +74,8 @@ class _Coverage:
     def __init__(self, size: int, sampler: DistributedSampler | None) -> None:
         self.size = size
         self.next = 0  # one process: the next code expected; sharded: the next position
-        self.padding = None if sampler is None else distributed.padding_rows(sampler).numpy()
+        # sharded: the sampler's positions from here on are padding (padding_rows, counted)
+        self.padding = None if sampler is None else distributed.padding_start(sampler)
         self.counts = None if sampler is None else np.zeros(size, dtype=np.uint8)
         self.outside: list[int] = []
         self.outside_count = 0
@@ -84,8 +85,9 @@ class _Coverage:
         if self.padding is None:
             return None
         start, self.next = self.next, self.next + len(codes)
-        padding = self.padding[start : self.next]
-        return ~padding if padding.any() else None
+        if self.next <= self.padding:
+            return None
+        return np.arange(start, self.next) < self.padding
 
     def add(self, codes: np.ndarray) -> None:
         if self.counts is None:
