@@ -40,7 +40,7 @@ from torch.utils.data import DataLoader, DistributedSampler
 import filial
 from filial import distributed
 from filial.checkpoint import load_checkpoint
-from filial.data import EpochLoader, Replay, training_loader
+from filial.data import EpochLoader, Replay, sharded_loader, training_loader
 from filial.demo import MLP, mail_room
 from filial.distributed import CoverageError, assemble, padding_rows
 from filial.evaluation import predict
@@ -174,6 +174,28 @@ def test_the_wrapped_loader_tells_the_sampler_each_epoch():
         assert seen[0][epoch] == list(reference)
         assert sorted(seen[0][epoch] + seen[1][epoch]) == list(range(10))
     assert len({tuple(order) for order in seen[0]}) == 3  # every epoch its own order
+
+
+def test_a_recipes_training_loader_is_sharded_for_torchrun():
+    """filial run under torchrun: the recipe's loader gets a DistributedSampler (shuffled as the
+    loader was) and each process a share of the batch; what cannot be sharded is named."""
+    data = blobs(10)
+    shuffled = DataLoader(data, batch_size=4, shuffle=True, num_workers=0, drop_last=True)
+    shards = [sharded_loader(shuffled, 2, rank) for rank in range(2)]
+    for rank, shard in enumerate(shards):
+        sampler = shard.sampler
+        assert isinstance(sampler, DistributedSampler) and sampler.shuffle
+        assert (sampler.rank, sampler.num_replicas, shard.batch_size) == (rank, 2, 2)
+        assert shard.drop_last and shard.collate_fn is shuffled.collate_fn
+    assert sorted(list(shards[0].sampler) + list(shards[1].sampler)) == list(range(10))
+    plain = sharded_loader(DataLoader(data, batch_size=4), 2, 0)
+    assert not plain.sampler.shuffle
+    assert sharded_loader(shards[0], 2, 0) is shards[0]  # sharded already
+    with pytest.raises(TypeError, match=r"should be a multiple of 3, but got batch_size=4"):
+        sharded_loader(shuffled, 3, 0)
+    weighted = torch.utils.data.WeightedRandomSampler([1.0] * 10, 10)
+    with pytest.raises(TypeError, match="Give the loader a torch.utils.data.DistributedSampler"):
+        sharded_loader(DataLoader(data, batch_size=4, sampler=weighted), 2, 0)
 
 
 def test_a_loader_without_set_epoch_is_rebuilt_as_before():
