@@ -25,9 +25,10 @@ Kinds:
 ``write N``
     the time to write an N x 1000 float16 store from rows already made: the streamed writer
     batch by batch where it exists, else ``TargetStore.write`` of the whole array.
-``replay N``
+``replay N [--generators all|torch]``
     per-row cost of a replayed pass (``sequential_loader`` with a ``Replay``) against a plain
-    pass over the same augmenting data, the same model.
+    pass over the same augmenting data, the same model; the augmentation draws from torch's
+    and Python's generators, or (``torch``, as torchvision's transforms do) torch's only.
 """
 
 from __future__ import annotations
@@ -69,8 +70,8 @@ def reset_peak() -> int:
 class IndexBuilt(Dataset):
     """Inputs looked up from the index (a fixed 4096 x 32 table), labels ``index % 1000``."""
 
-    def __init__(self, n: int, offset: int = 0, noise: float = 0.0) -> None:
-        self.n, self.offset, self.noise = n, offset, noise
+    def __init__(self, n: int, offset: int = 0, noise: float = 0.0, python: bool = True) -> None:
+        self.n, self.offset, self.noise, self.python = n, offset, noise, python
         self.table = torch.randn(4096, WIDTH, generator=torch.Generator().manual_seed(1))
 
     def __len__(self) -> int:
@@ -79,9 +80,10 @@ class IndexBuilt(Dataset):
     def __getitem__(self, index: int) -> tuple[torch.Tensor, int]:
         i = index + self.offset
         x = self.table[i & 4095]
-        if self.noise:  # random augmentation from torch's and Python's global generators
+        if self.noise:  # random augmentation from torch's (and Python's) global generators
             x = x + self.noise * torch.randn(WIDTH)
-            x = -x if random.random() < 0.5 else x
+            flip = random.random() if self.python else float(torch.rand(()))
+            x = -x if flip < 0.5 else x
         return x, i % CLASSES
 
 
@@ -211,7 +213,7 @@ def replay(args: argparse.Namespace) -> Any:
     from filial.data import Replay, sequential_loader
 
     torch.set_num_threads(args.threads)
-    data = IndexBuilt(args.n, noise=0.1)
+    data = IndexBuilt(args.n, noise=0.1, python=args.generators == "all")
     loader = DataLoader(data, batch_size=BATCH)
     model = nn.Sequential(nn.Linear(WIDTH, 256), nn.ReLU(), nn.Linear(256, 10)).eval()
     replayed = Replay(7, 1)
@@ -262,6 +264,12 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--work", default=None, help="folder for the temporary run directories")
     parser.add_argument(
         "--once", action="store_true", help="finish: generation 0 only, no plain loop (memory)"
+    )
+    parser.add_argument(
+        "--generators",
+        choices=("all", "torch"),
+        default="all",
+        help="replay: augmentation drawing from torch's and Python's generators, or torch's only",
     )
     args = parser.parse_args(argv)
     result = {"finish": finish, "write": write, "replay": replay}[args.kind](args)
