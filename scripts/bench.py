@@ -13,8 +13,9 @@ Figures and goals:
   A student: the plain loop reads the same targets from an in-memory tensor (a hand-written
   distillation loop). Digits MLP, and a small CNN on 32x32 random images (the equivalent of
   torchvision's FakeData, made here with learnable labels). Goal <= 1.02.
-* teacher pass: samples/s of filial's teacher pass / samples/s of a plain ``no_grad`` loop over
-  the same data. Goal >= 0.95.
+* teacher pass: samples/s of filial's teacher pass (streamed into a float16 store, published,
+  with the record's figures) / samples/s of a plain ``no_grad`` loop over the same data, digits
+  MLP. Goal >= 0.95.
 * cache versus online teacher: a cached student epoch / a ``teacher_mode="online"`` epoch (a
   teacher of the student's size runs on every batch), on the digits MLP and on the CIFAR
   ResNet-20 over torchvision's FakeData with the recipes' transforms (``filial.vision``; the
@@ -25,6 +26,17 @@ Figures and goals:
   epochs and teacher passes. Goal <= 1.05.
 * compact store: bytes per sample of full and top_k=10 stores at C = 10, 100 and 1000 (float16
   values, int16 classes). Goal <= 60 at C = 1000.
+* the teacher pass at scale (``scripts/bench_stream.py``, one process per measurement, so that
+  the kernel's peak-RSS counter sees only ``gen.finish``): ``nn.Linear(32, 1000)`` over a
+  dataset that builds its inputs from the index, N = 100,000 (and 1,281,167 with ``--large``).
+  Extra peak RSS of ``gen.finish``: goal <= 512 MiB for the full store at views=1 and for
+  top_k=10 at views=4, and for rank 0 and rank 1 of two gloo ranks (at 25,000 and 100,000
+  samples: the figure must not grow with N). Teacher pass samples/s (``finish``, writing
+  included) / a plain ``inference_mode`` loop over the same loader: goal >= 0.95. A replayed
+  pass per row / a plain pass over the same augmenting data: goal <= 1.3. Store write time per
+  row at 1,281,167 / at 100,000: goal <= 1.2 (``--large``). ``--before CHECKOUT`` runs the same
+  measurements against another checkout's ``src`` (the code before a change) and puts its
+  figures beside these.
 """
 
 from __future__ import annotations
@@ -35,6 +47,8 @@ import json
 import os
 import shutil
 import statistics
+import subprocess
+import sys
 import tempfile
 import time
 from collections.abc import Callable
@@ -48,11 +62,12 @@ from torch import nn
 from torch.utils.data import DataLoader, TensorDataset
 
 import filial
-import filial.evaluation
+import filial.generation
 from filial.demo import MLP, mail_room
-from filial.evaluation import predict
 from filial.losses import StudentLoss
+from filial.metrics import accuracy, as_float_metric
 from filial.store import TargetStore
+from filial.teacher import FigureSpec, StoreSpec, training_pass
 
 
 def alternate(
@@ -180,12 +195,20 @@ def student_overhead(model_fn, dataset, heldout, batch, repeats, work: Path) -> 
 
 
 def teacher_pass(repeats: int, work: Path) -> dict[str, Any]:
+    """The streamed teacher pass (the store written and published, the record's figures
+    summed) against a plain ``no_grad`` loop over the same data, digits MLP."""
     room = mail_room(noise=0.3, seed=0)
     train, heldout, _ = room.loaders(batch_size=64, seed=0)
     model = MLP((256, 256))()
+    spec = StoreSpec("float16", 1, None, "bench")
+    figures = FigureSpec("ce", 1.0, as_float_metric(accuracy, "accuracy"))
 
     def ours() -> None:
-        predict(model, train, seed=0)
+        passed = training_pass(
+            model, train, None, 0, store=(spec, work / "teacher"), figures=figures
+        )
+        assert passed is not None and passed.store is not None
+        passed.store.publish("bench", "bench")
 
     def plain() -> None:
         model.eval()
@@ -292,13 +315,12 @@ def lineage_overhead(epochs: int, work: Path) -> dict[str, Any]:
     fit = filial.fit_epochs(
         epochs, lambda p: torch.optim.SGD(p, lr=0.05, momentum=0.9), progress=False
     )
-    original = filial.evaluation.predict
+    original = filial.generation.training_pass
 
-    def timed_predict(model, loader, seed, fault=None, replay=None):
+    def timed_pass(*args, **kwargs):
         start = time.perf_counter()
-        result = original(model, loader, seed, fault, replay)
-        if loader is train:
-            spent["teacher"] += time.perf_counter() - start
+        result = original(*args, **kwargs)
+        spent["teacher"] += time.perf_counter() - start
         return result
 
     def timed_fit(gen):
@@ -307,7 +329,7 @@ def lineage_overhead(epochs: int, work: Path) -> dict[str, Any]:
         spent["fit"] += time.perf_counter() - start
         return model
 
-    filial.evaluation.predict = timed_predict
+    filial.generation.training_pass = timed_pass
     try:
         start = time.perf_counter()
         lineage = filial.Lineage(
@@ -323,7 +345,7 @@ def lineage_overhead(epochs: int, work: Path) -> dict[str, Any]:
         lineage.run(timed_fit)
         wall = time.perf_counter() - start
     finally:
-        filial.evaluation.predict = original
+        filial.generation.training_pass = original
     work_s = spent["fit"] + spent["teacher"]
     return {
         "wall_s": wall,
@@ -354,6 +376,155 @@ def compact_store(work: Path) -> dict[str, Any]:
     return result
 
 
+IMAGENET = 1_281_167
+_STREAM = Path(__file__).resolve().parent / "bench_stream.py"
+_MIB = 1024  # KiB per MiB
+
+
+def _stream(kind: str, n: int, src: Path, *extra: str) -> Any:
+    """One measurement of ``scripts/bench_stream.py`` in a process of its own, with ``src``
+    first on the path (this checkout's, or the one given with ``--before``)."""
+    env = {**os.environ, "PYTHONPATH": str(src), "OMP_NUM_THREADS": "2"}
+    done = subprocess.run(
+        [sys.executable, str(_STREAM), kind, str(n), *extra],
+        capture_output=True,
+        text=True,
+        env=env,
+        timeout=3600,
+    )
+    if done.returncode != 0:
+        return {"error": done.stderr.strip().splitlines()[-1:] or ["failed"]}
+    return json.loads(done.stdout.strip().splitlines()[-1])["result"]
+
+
+def stream_figures(src: Path, large: bool, quick: bool, before: bool) -> dict[str, Any]:
+    """The teacher pass at scale under one checkout (see the module docstring). The code
+    before streaming holds N x C outputs several times over: at 1,281,167 samples it needs
+    some 20-77 GiB, so ``before`` skips those sizes."""
+    small = 5_000 if quick else 100_000
+    sizes = [small] + ([IMAGENET] if large and not before and not quick else [])
+    ranks = [2_000, 8_000] if quick else [25_000, 100_000]
+    figures: dict[str, Any] = {"src": str(src), "full_views1": {}, "topk10_views4": {}}
+    for n in sizes:
+        full = _stream("finish", n, src)
+        if "error" not in full:
+            (one,) = full
+            ratios = [p / f for p, f in zip(one["plain_s"], one["finish_s"], strict=True)]
+            one["throughput_ratio"] = statistics.median(ratios)
+            pairs = zip(one.get("plain_cpu_s", []), one.get("finish_cpu_s", []), strict=True)
+            cpu = [p / f for p, f in pairs]
+            one["throughput_ratio_cpu"] = statistics.median(cpu) if cpu else None
+            one["extra_peak_mib"] = max(one["extra_peak_kib_each"]) / _MIB
+        figures["full_views1"][str(n)] = full
+        compact = _stream("finish", n, src, "--views", "4", "--top-k", "10", "--once")
+        if "error" not in compact:
+            compact[0]["extra_peak_mib"] = max(compact[0]["extra_peak_kib_each"]) / _MIB
+        figures["topk10_views4"][str(n)] = compact
+    figures["two_ranks"] = {}
+    for n in ranks:
+        both = _stream("finish", n, src, "--world", "2", "--threads", "1", "--once")
+        if "error" not in both:
+            for rank in both:
+                rank["extra_peak_mib"] = max(rank["extra_peak_kib_each"]) / _MIB
+        figures["two_ranks"][str(n)] = both
+    figures["store_write"] = {str(n): _stream("write", n, src) for n in sizes}
+    for generators in ("all", "torch"):
+        figures[f"replay_{generators}"] = _stream(
+            "replay", 2_000 if quick else 20_000, src, "--threads", "1", "--generators", generators
+        )
+    return figures
+
+
+def stream_rows(after: dict[str, Any], before: dict[str, Any] | None) -> list[dict[str, Any]]:
+    """The table rows of the teacher pass at scale, each with its "before" figure."""
+    rows = []
+
+    def peak(figures: dict[str, Any] | None, key: str, n: str, rank: int = 0) -> float | None:
+        found = (figures or {}).get(key, {}).get(n)
+        if not found or "error" in found:
+            return None
+        return float(found[rank]["extra_peak_mib"])
+
+    for key, label in (
+        ("full_views1", "full store, views=1"),
+        ("topk10_views4", "top_k=10, views=4"),
+    ):
+        for n in after[key]:
+            rows.append(
+                {
+                    "figure": f"extra peak RSS of finish (MiB), {label}, N={int(n):,}",
+                    "value": peak(after, key, n),
+                    "before": peak(before, key, n),
+                    "goal": "<= 512",
+                }
+            )
+    for n in after["two_ranks"]:
+        for rank in (0, 1):
+            rows.append(
+                {
+                    "figure": f"extra peak RSS of finish (MiB), two ranks, rank {rank}, "
+                    f"N={int(n):,}",
+                    "value": peak(after, "two_ranks", n, rank),
+                    "before": peak(before, "two_ranks", n, rank),
+                    "goal": "<= 512",
+                }
+            )
+
+    def ratio(figures: dict[str, Any] | None, n: str, key: str) -> float | None:
+        found = (figures or {}).get("full_views1", {}).get(n)
+        value = None if not found or "error" in found else found[0].get(key)
+        return None if value is None else float(value)
+
+    for n in after["full_views1"]:
+        for key, clock in (("throughput_ratio", "wall"), ("throughput_ratio_cpu", "CPU")):
+            rows.append(
+                {
+                    "figure": f"teacher pass samples/s / plain loop ({clock}), N={int(n):,}",
+                    "value": ratio(after, n, key),
+                    "before": ratio(before, n, key),
+                    "goal": ">= 0.95",
+                }
+            )
+
+    def replay_ratio(figures: dict[str, Any] | None, name: str, key: str) -> float | None:
+        found = (figures or {}).get(name)
+        value = None if not found or "error" in found else found.get(key)
+        return None if value is None else float(value)
+
+    for name, data in (("replay_all", "torch+Python"), ("replay_torch", "torch only")):
+        for key, clock in (("ratio_median", "wall"), ("cpu_ratio_median", "CPU")):
+            rows.append(
+                {
+                    "figure": f"replayed / plain pass per row, augmenting {data} ({clock})",
+                    "value": replay_ratio(after, name, key),
+                    "before": replay_ratio(before, name, key),
+                    "goal": "<= 1.3",
+                }
+            )
+    writes = after["store_write"]
+    for n, found in writes.items():
+        old = (before or {}).get("store_write", {}).get(n)
+        rows.append(
+            {
+                "figure": f"store write, us per row, N={int(n):,}",
+                "value": found.get("us_per_row"),
+                "before": None if not old or "error" in old else old["us_per_row"],
+                "goal": "report",
+            }
+        )
+    if len(writes) > 1:
+        first, last = list(writes.values())[0], list(writes.values())[-1]
+        rows.append(
+            {
+                "figure": "store write per row, N=1,281,167 / N=100,000",
+                "value": last["us_per_row"] / first["us_per_row"],
+                "before": None,
+                "goal": "<= 1.2",
+            }
+        )
+    return rows
+
+
 def main() -> int:
     parser = argparse.ArgumentParser(prog="scripts/bench", description=__doc__.split("\n")[0])
     parser.add_argument("--repeats", type=int, default=9, help="alternations per figure (>= 5)")
@@ -361,6 +532,22 @@ def main() -> int:
     parser.add_argument("--store-rows", type=int, default=1_280_000)
     parser.add_argument("--quick", action="store_true", help="tiny sizes, 2 repeats: a smoke run")
     parser.add_argument("--out", default="bench.json")
+    parser.add_argument(
+        "--only",
+        choices=("all", "loops", "stream"),
+        default="all",
+        help="loops: the figures of the training and teacher loops; stream: the teacher pass at "
+        "scale (memory, speed, writing, replay)",
+    )
+    parser.add_argument(
+        "--large", action="store_true", help="the teacher pass at scale at N = 1,281,167 too"
+    )
+    parser.add_argument(
+        "--before",
+        type=Path,
+        help="a checkout of filial (its src/ is used) to measure the teacher pass at scale "
+        "against, side by side",
+    )
     args = parser.parse_args()
     repeats = 2 if args.quick else max(5, args.repeats)
     rows = 4096 if args.quick else args.store_rows
@@ -368,31 +555,95 @@ def main() -> int:
     torch.set_num_threads(args.threads)
     work = Path(tempfile.mkdtemp(prefix="filial-bench-"))
     started = time.perf_counter()
-    try:
-        room = mail_room(noise=0.3, seed=0)
-        images, held_images = (
-            (random_images(128, 1), random_images(64, 2))
-            if args.quick
-            else (random_images(1024, 1), random_images(256, 2))
+    figures: dict[str, Any] = {}
+    table: list[dict[str, Any]] = []
+    if args.only in ("all", "loops"):
+        try:
+            figures.update(loop_figures(args, repeats, rows, lineage_epochs, work))
+        finally:
+            shutil.rmtree(work, ignore_errors=True)
+        table = loop_table(figures)
+    stream_table: list[dict[str, Any]] = []
+    if args.only in ("all", "stream"):
+        here = Path(__file__).resolve().parents[1] / "src"
+        figures["stream"] = stream_figures(here, args.large, args.quick, before=False)
+        before = None
+        if args.before is not None:
+            before = stream_figures(args.before / "src", args.large, args.quick, before=True)
+            figures["stream_before"] = before
+        stream_table = stream_rows(figures["stream"], before)
+    report = {
+        "cores": os.cpu_count(),
+        "threads": args.threads,
+        "repeats": repeats,
+        "quick": args.quick,
+        "seconds": time.perf_counter() - started,
+        "load_average": os.getloadavg(),
+        "torch": torch.__version__,
+        "table": table,
+        "stream_table": stream_table,
+        "figures": figures,
+    }
+    Path(args.out).write_text(json.dumps(report, indent=2) + "\n")
+    if table:
+        print(f"{'figure':<50} {'value':>8}  {'goal':<8} {'met':<4} spread (min-max)")
+        for row in table:
+            print(
+                f"{row['figure']:<50} {row['value']:>8.3f}  {row['goal']:<8} "
+                f"{'yes' if row['met'] else 'NO':<4} {row['spread']}"
+            )
+        sizes = ", ".join(
+            f"C={c}: {v['full']} full, {v['top_k_10']} top-10"
+            for c, v in figures["compact_store"].items()
+            if c != "bytes_per_sample"
         )
-        figures = {
-            "student_epoch_digits_mlp": student_overhead(
-                MLP((256, 256)), room.train, room.heldout, 64, repeats, work / "mlp"
-            ),
-            "student_epoch_cnn_32x32": student_overhead(
-                SmallCNN(), images, held_images, 64, repeats, work / "cnn"
-            ),
-            "teacher_pass": teacher_pass(repeats, work),
-            "cache_versus_online": cache_versus_online(repeats, work / "online"),
-            "cache_versus_online_cifar": cache_versus_online_cifar(
-                repeats, work / "online_cifar", args.quick
-            ),
-            "store_gather": store_gather(rows, repeats, work),
-            "lineage_overhead": lineage_overhead(lineage_epochs, work),
-            "compact_store": compact_store(work),
-        }
-    finally:
-        shutil.rmtree(work, ignore_errors=True)
+        print(f"bytes per sample: {sizes}")
+    if stream_table:
+        print(f"\n{'the teacher pass at scale':<66} {'after':>9} {'before':>9}  goal")
+        for row in stream_table:
+            value = "-" if row["value"] is None else f"{row['value']:.3f}"
+            old = "-" if row["before"] is None else f"{row['before']:.3f}"
+            print(f"{row['figure']:<66} {value:>9} {old:>9}  {row['goal']}")
+        if not args.large:
+            print("(N = 1,281,167: scripts/bench --only stream --large)")
+    load = ", ".join(f"{x:.2f}" for x in os.getloadavg())
+    print(
+        f"{os.cpu_count()} cores, {args.threads} threads, {repeats} repeats, load average "
+        f"{load}; wrote {args.out}"
+    )
+    return 0
+
+
+def loop_figures(
+    args: argparse.Namespace, repeats: int, rows: int, lineage_epochs: int, work: Path
+) -> dict[str, Any]:
+    """The figures of the training and teacher loops, in one process."""
+    room = mail_room(noise=0.3, seed=0)
+    images, held_images = (
+        (random_images(128, 1), random_images(64, 2))
+        if args.quick
+        else (random_images(1024, 1), random_images(256, 2))
+    )
+    return {
+        "student_epoch_digits_mlp": student_overhead(
+            MLP((256, 256)), room.train, room.heldout, 64, repeats, work / "mlp"
+        ),
+        "student_epoch_cnn_32x32": student_overhead(
+            SmallCNN(), images, held_images, 64, repeats, work / "cnn"
+        ),
+        "teacher_pass": teacher_pass(repeats, work),
+        "cache_versus_online": cache_versus_online(repeats, work / "online"),
+        "cache_versus_online_cifar": cache_versus_online_cifar(
+            repeats, work / "online_cifar", args.quick
+        ),
+        "store_gather": store_gather(rows, repeats, work),
+        "lineage_overhead": lineage_overhead(lineage_epochs, work),
+        "compact_store": compact_store(work),
+    }
+
+
+def loop_table(figures: dict[str, Any]) -> list[dict[str, Any]]:
+    """The goal rows of the loop figures."""
     goals = [
         (
             "generation-0 epoch / plain epoch, digits MLP",
@@ -484,31 +735,7 @@ def main() -> int:
         table.append(
             {"figure": name, "value": value, "goal": f"{op} {goal}", "met": met, "spread": spread}
         )
-    report = {
-        "cores": os.cpu_count(),
-        "threads": args.threads,
-        "repeats": repeats,
-        "quick": args.quick,
-        "seconds": time.perf_counter() - started,
-        "torch": torch.__version__,
-        "table": table,
-        "figures": figures,
-    }
-    Path(args.out).write_text(json.dumps(report, indent=2) + "\n")
-    print(f"{'figure':<50} {'value':>8}  {'goal':<8} {'met':<4} spread (min-max)")
-    for row in table:
-        print(
-            f"{row['figure']:<50} {row['value']:>8.3f}  {row['goal']:<8} "
-            f"{'yes' if row['met'] else 'NO':<4} {row['spread']}"
-        )
-    sizes = ", ".join(
-        f"C={c}: {v['full']} full, {v['top_k_10']} top-10"
-        for c, v in figures["compact_store"].items()
-        if c != "bytes_per_sample"
-    )
-    print(f"bytes per sample: {sizes}")
-    print(f"{os.cpu_count()} cores, {args.threads} threads, {repeats} repeats; wrote {args.out}")
-    return 0
+    return table
 
 
 if __name__ == "__main__":

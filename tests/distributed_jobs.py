@@ -74,6 +74,7 @@ def digits(rank: int, world: int) -> tuple[DataLoader, DataLoader, DataLoader, E
 
 
 def lineage(run_dir: Path, train, heldout, test, **settings: Any) -> filial.Lineage:
+    settings = {"store_dtype": "float32", **settings}
     return filial.Lineage(
         MLP(HIDDEN),
         train,
@@ -82,7 +83,6 @@ def lineage(run_dir: Path, train, heldout, test, **settings: Any) -> filial.Line
         targets="ce",
         max_generations=GENERATIONS,
         patience=1,
-        store_dtype="float32",
         test_loader=test,
         seed=3,
         **settings,
@@ -157,6 +157,13 @@ def lineage_job(rank: int, world: int, rendezvous: str, root: str) -> None:
     hook_loop(online)
     report["online"] = {"records": online.result.records}
     online.close()
+
+    # A compact store: float16, the 4 largest outputs of each sample.
+    train, heldout, test, _ = digits(rank, world)
+    compact = lineage(root_path / "compact", train, heldout, test, top_k=4, store_dtype="float16")
+    hook_loop(compact)
+    report["compact"] = {"records": compact.result.records}
+    compact.close()
 
     # Replayed views of an augmenting dataset: the ranks share the (sample, view) codes.
     augmented = Augmented()
@@ -269,6 +276,21 @@ def collectives_job(rank: int, world: int, rendezvous: str, root: str) -> None:
     )
     # The padding row sent as if it were a sample of its own: a duplicate, refused.
     report["duplicate"] = _error(lambda: distributed.gather_indexed(indices, size, outputs))
+
+    # The streamed pass's check: one byte per index on each rank, summed on rank 0.
+    def counts(kept: list[int]) -> np.ndarray:
+        found = np.zeros(size, dtype=np.uint8)
+        found[kept] = 1
+        return found
+
+    mine = indices[~padding].tolist()
+    report["counts_whole"] = _error(lambda: distributed.check_counts(counts(mine), (0, [])))
+    short = mine[:-1] if rank == 1 else mine  # rank 1 loses sample 5
+    report["counts_missing"] = _error(lambda: distributed.check_counts(counts(short), (0, [])))
+    twice = mine + [0] if rank == 1 else mine  # rank 1 keeps its padding row (sample 0)
+    report["counts_twice"] = _error(lambda: distributed.check_counts(counts(twice), (0, [])))
+    beyond = (1, [9]) if rank == 1 else (0, [])
+    report["counts_beyond"] = _error(lambda: distributed.check_counts(counts(mine), beyond))
 
     def fail() -> None:
         raise OSError("disk full (simulated)")

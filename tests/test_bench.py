@@ -40,3 +40,10 @@ def test_bench_quick_mode_writes_its_table(tmp_path):
     assert [sizes[c]["full"] for c in ("10", "100", "1000")] == [20, 200, 2000]
     assert sizes["bytes_per_sample"] == sizes["1000"]["top_k_10"] == 40
     assert "figure" in done.stdout and "wrote" in done.stdout
+    # the teacher pass at scale, at the quick mode's sizes (this checkout only)
+    stream = report["stream_table"]
+    assert len({row["figure"] for row in stream}) == len(stream) > 0
+    for row in stream:
+        assert isinstance(row["value"], float) and row["value"] > 0, row
+        assert row["before"] is None  # no --before checkout given
+    assert "the teacher pass at scale" in done.stdout

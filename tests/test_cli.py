@@ -68,7 +68,8 @@ def test_run_report_and_tensorboard_end_to_end(small_recipe, tmp_path, capsys):
     assert "across seeds (mean +- standard deviation)" in out
     assert f"TensorBoard: tensorboard --logdir {run_dir / 'tb'}" in out
     saved = tomllib.loads((run_dir / "recipe.toml").read_text())
-    assert saved["generations"]["max_generations"] == 2  # the old key max, renamed and saved["run"]["run_dir"] == str(run_dir)
+    # max_generations: the recipe says max, the key's old name, which is saved under the new one
+    assert saved["generations"]["max_generations"] == 2 and saved["run"]["run_dir"] == str(run_dir)
     for seed in (0, 1):
         state = json.loads((run_dir / f"seed{seed}" / "lineage.json").read_text())
         assert [r["generation"] for r in state["records"]] == [0, 1, 2]

@@ -40,11 +40,12 @@ from torch.utils.data import DataLoader, DistributedSampler
 import filial
 from filial import distributed
 from filial.checkpoint import load_checkpoint
-from filial.data import EpochLoader, Replay, training_loader
+from filial.data import EpochLoader, Replay, sharded_loader, training_loader
 from filial.demo import MLP, mail_room
 from filial.distributed import CoverageError, assemble, padding_rows
 from filial.evaluation import predict
 from filial.seeding import derive_seed
+from filial.store import TargetStore
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -73,6 +74,23 @@ def test_padding_rows_are_the_samplers_repeats(size, world):
     # torch pads by repeating the first indices of the list: total_size - size of them
     assert len(repeated) == world * -(-size // world) - size
     assert all(i < size for i in repeated)
+
+
+@pytest.mark.parametrize(
+    ("size", "world"), [(7, 2), (8, 2), (10, 3), (1, 2), (5, 4), (2, 5), (1001, 7)]
+)
+def test_the_pass_shards_are_distributed_samplers_without_its_list(size, world):
+    """The passes' lazy shards give DistributedSampler's very order (its padding included),
+    and padding_rows marks the same positions on both."""
+    for rank in range(world):
+        torchs = DistributedSampler(range(size), num_replicas=world, rank=rank, shuffle=False)
+        lazy = distributed._InOrderShard(
+            range(size), num_replicas=world, rank=rank, shuffle=False, drop_last=False
+        )
+        assert list(lazy) == list(torchs) and len(lazy) == len(torchs)
+        positions = torch.arange(rank, torchs.total_size, world)
+        assert torch.equal(padding_rows(lazy), positions >= size)
+        assert padding_rows(lazy)[: distributed.padding_start(lazy)].logical_not().all()
 
 
 def test_odd_dataset_with_padding_gives_each_index_once():
@@ -158,6 +176,28 @@ def test_the_wrapped_loader_tells_the_sampler_each_epoch():
     assert len({tuple(order) for order in seen[0]}) == 3  # every epoch its own order
 
 
+def test_a_recipes_training_loader_is_sharded_for_torchrun():
+    """filial run under torchrun: the recipe's loader gets a DistributedSampler (shuffled as the
+    loader was) and each process a share of the batch; what cannot be sharded is named."""
+    data = blobs(10)
+    shuffled = DataLoader(data, batch_size=4, shuffle=True, num_workers=0, drop_last=True)
+    shards = [sharded_loader(shuffled, 2, rank) for rank in range(2)]
+    for rank, shard in enumerate(shards):
+        sampler = shard.sampler
+        assert isinstance(sampler, DistributedSampler) and sampler.shuffle
+        assert (sampler.rank, sampler.num_replicas, shard.batch_size) == (rank, 2, 2)
+        assert shard.drop_last and shard.collate_fn is shuffled.collate_fn
+    assert sorted(list(shards[0].sampler) + list(shards[1].sampler)) == list(range(10))
+    plain = sharded_loader(DataLoader(data, batch_size=4), 2, 0)
+    assert not plain.sampler.shuffle
+    assert sharded_loader(shards[0], 2, 0) is shards[0]  # sharded already
+    with pytest.raises(TypeError, match=r"should be a multiple of 3, but got batch_size=4"):
+        sharded_loader(shuffled, 3, 0)
+    weighted = torch.utils.data.WeightedRandomSampler([1.0] * 10, 10)
+    with pytest.raises(TypeError, match="Give the loader a torch.utils.data.DistributedSampler"):
+        sharded_loader(DataLoader(data, batch_size=4, sampler=weighted), 2, 0)
+
+
 def test_a_loader_without_set_epoch_is_rebuilt_as_before():
     loader = training_loader(DataLoader(blobs(10), batch_size=4, shuffle=True), None)
     assert type(loader) is DataLoader
@@ -225,6 +265,13 @@ def test_collectives_on_two_ranks(tmp_path):
     assert zero["uneven"].startswith("ValueError: rank(s) [1] passed tensors whose rows")
     assert "more than once" in zero["duplicate"] and ": 0" in zero["duplicate"]
     assert one["duplicate"].startswith("CoverageError")
+    # the streamed pass's counts: the same rules, with rank 0 naming the indices
+    assert zero["counts_whole"] is None and one["counts_whole"] is None
+    assert "1 of 7 sample indices are missing: 5" in zero["counts_missing"]
+    assert "more than once" in zero["counts_twice"] and ": 0" in zero["counts_twice"]
+    assert "1 rows name indices beyond 6: 9" in zero["counts_beyond"]
+    for name in ("counts_missing", "counts_twice", "counts_beyond"):
+        assert one[name].startswith("CoverageError") and "rank 0's error" in one[name], name
     assert zero["rank_zero_failed"] == "OSError: disk full (simulated)"
     assert (
         one["rank_zero_failed"].startswith("RankZeroFailed")
@@ -280,10 +327,29 @@ def test_both_ranks_report_the_same_records_and_stop_together(two_ranks):
     assert len(list((root / "straight" / "tb" / "gen0").iterdir())) == 1
 
 
+def _as_one_process_writes_it(
+    directory: Path, outputs: torch.Tensor, scratch: Path, views: int = 1
+) -> bool:
+    """The store in ``directory`` is byte for byte the in-memory writer's store of one
+    process's ``outputs`` (its manifest included), written to ``scratch``."""
+    manifest = json.loads((directory / "targets.json").read_text(encoding="utf-8"))
+    alone = scratch / f"{directory.parent.name}-{directory.name}"
+    TargetStore.write(
+        alone,
+        outputs.view(-1, views, outputs.shape[1]).numpy(),
+        dtype=manifest["dtype"],
+        fingerprint=manifest["fingerprint"],
+        teacher_sha256=manifest["teacher_sha256"],
+        top_k=manifest["top_k"],
+    )
+    names = ["targets.npy", "targets.json"] + (["targets_index.npy"] if manifest["top_k"] else [])
+    return all((directory / n).read_bytes() == (alone / n).read_bytes() for n in names)
+
+
 @pytest.mark.slow
-def test_the_store_holds_one_target_per_sample_as_one_process_computes_it(two_ranks):
-    """Rank 0's store equals a single-process teacher pass with the same checkpoint, and the
-    recorded figures are those of the whole training and held-out sets."""
+def test_the_store_holds_one_target_per_sample_as_one_process_computes_it(two_ranks, tmp_path):
+    """Rank 0's store equals a single-process teacher pass with the same checkpoint, byte for
+    byte, and the recorded figures are those of the whole training and held-out sets."""
     root, (zero, _) = two_ranks
     room = mail_room(noise=0.3, seed=0, train_size=TRAIN_SIZE, heldout_size=299)
     for record in zero["straight"]["records"]:
@@ -295,6 +361,7 @@ def test_the_store_holds_one_target_per_sample_as_one_process_computes_it(two_ra
         reference = predict(model, DataLoader(room.train, batch_size=BATCH), seed=0)
         targets = torch.from_numpy(np.load(directory / "targets.npy"))[:, 0]
         torch.testing.assert_close(targets, reference.outputs)  # float32 store
+        assert _as_one_process_writes_it(directory, reference.outputs, tmp_path)
         heldout = torch.from_numpy(np.load(directory / "heldout.npy"))
         torch.testing.assert_close(heldout, predict(model, DataLoader(room.heldout), 0).outputs)
         # scikit-learn's accuracy over every held-out and training sample
@@ -336,6 +403,25 @@ def test_a_resumed_two_rank_run_equals_one_that_went_straight_through(two_ranks)
     assert zero["rebuilt_first_row"] == one["rebuilt_first_row"]
     straight = filial.TargetStore(root / "straight" / "gen0").read_all()[0, 0].tolist()
     assert zero["rebuilt_first_row"] == straight  # the damage is gone
+    # rebuilt by the two ranks' streamed pass: the very bytes of the run that went straight
+    for name in ("targets.npy", "targets.json"):
+        rebuilt = (root / "resumed" / "gen0" / name).read_bytes()
+        assert rebuilt == (root / "straight" / "gen0" / name).read_bytes(), name
+
+
+@pytest.mark.slow
+def test_a_compact_float16_store_is_one_process_s_byte_for_byte(two_ranks, tmp_path):
+    root, (zero, one) = two_ranks
+    assert _same(zero["compact"]["records"], one["compact"]["records"])
+    room = mail_room(noise=0.3, seed=0, train_size=TRAIN_SIZE, heldout_size=299)
+    for record in zero["compact"]["records"]:
+        directory = root / "compact" / f"gen{record['generation']}"
+        assert np.load(directory / "targets_index.npy").shape == (TRAIN_SIZE, 1, 4)
+        model = MLP(HIDDEN)()
+        model.load_state_dict(load_checkpoint(root / "compact" / record["checkpoint"]))
+        reference = predict(model, DataLoader(room.train, batch_size=BATCH), seed=0)
+        assert _as_one_process_writes_it(directory, reference.outputs, tmp_path)
+    assert not list(root.rglob(".*.tmp-*"))  # no rank left a temporary behind
 
 
 @pytest.mark.slow
@@ -360,7 +446,7 @@ def test_an_online_teacher_runs_on_every_rank(two_ranks):
 
 
 @pytest.mark.slow
-def test_replayed_views_are_shared_by_code_and_equal_one_process(two_ranks):
+def test_replayed_views_are_shared_by_code_and_equal_one_process(two_ranks, tmp_path):
     """views=3 on an augmenting dataset: the ranks split the (sample, view) codes; the store
     holds one target per pair, equal to a single process's replayed pass with the checkpoint."""
     root, (zero, one) = two_ranks
@@ -376,6 +462,7 @@ def test_replayed_views_are_shared_by_code_and_equal_one_process(two_ranks):
         alone = predict(model, DataLoader(dataset, batch_size=16), 0, replay=replay)
         torch.testing.assert_close(targets, alone.outputs.view(len(dataset), 3, 10))
         assert not torch.equal(targets[:, 0], targets[:, 1])  # the views differ
+        assert _as_one_process_writes_it(directory, alone.outputs, tmp_path, views=3)
 
 
 @pytest.mark.slow
@@ -406,3 +493,55 @@ def test_the_recipe_runs_under_torchrun(tmp_path):
     done = subprocess.run(alone, capture_output=True, text=True, timeout=300, env=env)
     assert done.returncode == 0, done.stderr[-3000:]
     assert "1 process(es)" in done.stdout
+
+
+@pytest.mark.slow
+def test_filial_run_under_torchrun_runs_seeds_and_the_matched_baseline(tmp_path):
+    """``torchrun -m filial run``: two gloo ranks run a recipe's seeds and its matched
+    baseline; rank 0 alone prints the report; every store is one process's byte for byte; the
+    same command again resumes and trains nothing."""
+    run_dir = tmp_path / "run"
+    command = [
+        sys.executable,
+        "-m",
+        "torch.distributed.run",
+        "--standalone",
+        "--nproc-per-node=2",
+        "-m",
+        "filial",
+        "run",
+        str(ROOT / "recipes" / "digits_ce.toml"),
+        "--run-dir",
+        str(run_dir),
+        "--set",
+        "run.seeds=[0, 1]",
+        "--set",
+        "model.hidden=[16]",
+        "--set",
+        "training.epochs=2",
+        "--set",
+        "generations.max=1",
+    ]
+    env = {**os.environ, "OMP_NUM_THREADS": "1"}
+    done = subprocess.run(command, capture_output=True, text=True, timeout=600, env=env)
+    assert done.returncode == 0, done.stderr[-3000:]
+    assert done.stdout.count("2 lineage(s)") == 1  # one report, from rank 0
+    assert done.stdout.count("matched baseline (") == 2
+    room = mail_room(noise=0.3, seed=0)
+    for seed in (0, 1):
+        state = json.loads((run_dir / f"seed{seed}" / "lineage.json").read_text())
+        assert [r["generation"] for r in state["records"]] == [0, 1]
+        baseline = json.loads((run_dir / f"seed{seed}" / "baseline" / "baseline.json").read_text())
+        assert baseline["epochs_matched"] == 4
+        for record in state["records"]:
+            directory = run_dir / f"seed{seed}" / f"gen{record['generation']}"
+            model = MLP((16,))()
+            model.load_state_dict(load_checkpoint(run_dir / f"seed{seed}" / record["checkpoint"]))
+            reference = predict(model, DataLoader(room.train, batch_size=64), seed=0)
+            assert _as_one_process_writes_it(directory, reference.outputs, tmp_path)
+    checkpoints = {p: p.read_bytes() for p in run_dir.rglob("student.pt")}
+    again = subprocess.run(command, capture_output=True, text=True, timeout=600, env=env)
+    assert again.returncode == 0, again.stderr[-3000:]
+    assert again.stderr.count("is already finished") == 2 and "generation 0:" not in again.stderr
+    assert {p: p.read_bytes() for p in run_dir.rglob("student.pt")} == checkpoints
+    assert not list(run_dir.rglob(".*.tmp-*"))

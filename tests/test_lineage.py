@@ -317,18 +317,21 @@ def test_failed_state_write_keeps_memory_and_disk_in_step(loaders, tmp_path, mon
 
 def test_crash_inside_finish_resumes_to_the_same_records(loaders, tmp_path, monkeypatch):
     whole = _hook(_lineage(loaders, tmp_path / "whole"))
-    real = filial.store.TargetStore.write
+    real = filial.store.StoreWriter.publish
 
-    def crash_in_generation_two(directory, *args, **kwargs):
-        if str(directory).endswith("gen2"):
-            raise KeyboardInterrupt  # as if the process stopped while writing targets
-        return real(directory, *args, **kwargs)
+    def crash_in_generation_two(writer, **kwargs):
+        if str(writer.directory).endswith("gen2"):
+            raise KeyboardInterrupt  # as if the process stopped while publishing targets
+        return real(writer, **kwargs)
 
-    monkeypatch.setattr(filial.store.TargetStore, "write", crash_in_generation_two)
+    monkeypatch.setattr(filial.store.StoreWriter, "publish", crash_in_generation_two)
     with pytest.raises(KeyboardInterrupt):
         _hook(_lineage(loaders, tmp_path / "run"))
-    monkeypatch.setattr(filial.store.TargetStore, "write", real)
+    monkeypatch.setattr(filial.store.StoreWriter, "publish", real)
     assert (tmp_path / "run" / "gen2" / "student.pt").is_file()  # written, never recorded
+    # the streamed rows' temporaries went with the interrupted generation
+    assert not list((tmp_path / "run").rglob(".*.tmp-*"))
+    assert not (tmp_path / "run" / "gen2" / "targets.npy").exists()
     resumed = _lineage(loaders, tmp_path / "run")
     assert [r["generation"] for r in resumed.result.records] == [0, 1]
     assert _stable(_hook(resumed).records) == _stable(whole.records)

@@ -1,13 +1,22 @@
-"""TargetStore: round trips, the manifest, and refusal of incomplete, damaged or foreign stores."""
+"""TargetStore: round trips, the manifest, and refusal of incomplete, damaged or foreign stores;
+StoreWriter: a store written row by row, in any order and from several writers.
+
+Outside reference: ``hashlib.sha256`` over the finished file (what ``verify`` recomputes), and
+numpy's own ``.npy`` reader.
+"""
 
 from __future__ import annotations
 
+import errno
+import hashlib
+import os
 import pickle
 
 import numpy as np
 import pytest
 
-from filial.store import StoreError, TargetStore
+from filial._io import sweep_temporaries
+from filial.store import StoreError, StoreWriter, TargetStore
 
 
 def _outputs(n=20, views=1, classes=4, seed=0):
@@ -112,3 +121,107 @@ def test_pickled_store_carries_no_open_memory_map(tmp_path):
     clone = pickle.loads(pickle.dumps(store))
     assert clone._array is None
     np.testing.assert_array_equal(clone.gather(np.array([4])), store.gather(np.array([4])))
+
+
+# -- the streamed writer -----------------------------------------------------------------------
+
+
+def _layout(**extra):
+    return {"count": 20, "views": 2, "classes": 4, "dtype": "float32", **extra}
+
+
+def test_rows_written_in_any_order_by_two_writers_make_the_in_memory_writers_store(tmp_path):
+    """As two ranks write: interleaved codes, each writer its own; the owner publishes. The
+    sha256 is then computed from the finished file (the rows did not come in order)."""
+    outputs = _outputs(views=2)
+    flat = outputs.reshape(40, 4)
+    owner = StoreWriter.create(tmp_path / "streamed", **_layout())
+    other = StoreWriter.join(tmp_path / "streamed", os.getpid(), **_layout())
+    codes = np.random.default_rng(1).permutation(40)
+    for writer, share in ((owner, codes[::2]), (other, codes[1::2])):
+        for batch in np.array_split(share, 3):
+            writer.put(batch, flat[batch])
+    other.sync()
+    other.close()
+    store = owner.publish(peak=float(np.abs(outputs).max()), fingerprint="f", teacher_sha256="t")
+    TargetStore.write(
+        tmp_path / "whole", outputs, dtype="float32", fingerprint="f", teacher_sha256="t"
+    )
+    for name in ("targets.npy", "targets.json"):
+        assert (tmp_path / "streamed" / name).read_bytes() == (
+            tmp_path / "whole" / name
+        ).read_bytes()
+    digest = hashlib.sha256((tmp_path / "streamed" / "targets.npy").read_bytes()).hexdigest()
+    assert store.manifest["sha256"] == digest
+    np.testing.assert_array_equal(np.load(tmp_path / "streamed" / "targets.npy"), outputs)
+
+
+def test_a_writer_in_progress_is_a_temporary_that_only_a_dead_writer_loses(tmp_path):
+    writer = StoreWriter.create(tmp_path, **_layout(top_k=2))
+    assert sorted(p.name for p in tmp_path.iterdir()) == [
+        f".targets.npy.tmp-{os.getpid()}",
+        f".targets_index.npy.tmp-{os.getpid()}",
+    ]
+    assert not TargetStore(tmp_path).exists()
+    assert sweep_temporaries(tmp_path) == []  # its writer (this process) is alive
+    writer.discard()
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_a_publish_replaces_an_older_store_and_its_manifest_goes_first(tmp_path, monkeypatch):
+    old = _outputs(views=2) + 1
+    TargetStore.write(tmp_path, old, dtype="float32", fingerprint="f", teacher_sha256="old")
+    rows = _outputs(views=2).reshape(40, 4)
+    writer = StoreWriter.create(tmp_path, **_layout())
+    writer.put(np.arange(40), rows)
+    with pytest.raises(StoreError, match="NaN"):  # refused before anything is touched
+        writer.publish(peak=float("nan"), fingerprint="f", teacher_sha256="new")
+    TargetStore(tmp_path).verify()
+    assert not list(tmp_path.glob(".*.tmp-*"))
+
+    writer = StoreWriter.create(tmp_path, **_layout())
+    writer.put(np.arange(40), rows)
+
+    def fails(source, target):
+        raise OSError(errno.EIO, "input/output error (simulated)")
+
+    monkeypatch.setattr(os, "replace", fails)
+    with pytest.raises(OSError, match="simulated"):
+        writer.publish(peak=1.0, fingerprint="f", teacher_sha256="new")
+    monkeypatch.undo()
+    assert not TargetStore(tmp_path).exists()  # the older manifest went before the rename
+    assert not list(tmp_path.glob(".*.tmp-*"))
+
+    writer = StoreWriter.create(tmp_path, **_layout())
+    writer.put(np.arange(40), rows)
+    writer.publish(peak=1.0, fingerprint="f", teacher_sha256="new").verify()
+    assert TargetStore(tmp_path).manifest["teacher_sha256"] == "new"
+
+
+def test_bad_rows_are_refused(tmp_path):
+    writer = StoreWriter.create(tmp_path, **_layout(top_k=2))
+    with pytest.raises(ValueError, match=r"codes should lie in \[0, 40\)"):
+        writer.put(np.array([39, 40]), np.zeros((2, 2)), np.zeros((2, 2)))
+    with pytest.raises(ValueError, match=r"shape \(1, 2\)"):
+        writer.put(np.array([3]), np.zeros((1, 4)), np.zeros((1, 2)))
+    with pytest.raises(ValueError, match="top-k layout takes values and classes"):
+        writer.put(np.array([3]), np.zeros((1, 2)))
+    writer.discard()
+    with pytest.raises(StoreError, match="top_k should lie in"):
+        StoreWriter.create(tmp_path, **_layout(top_k=5))
+    with pytest.raises(StoreError, match="is not there"):
+        StoreWriter.join(tmp_path, 12345, **_layout())
+
+
+def test_a_full_disk_while_rows_are_written_names_the_file(tmp_path, monkeypatch):
+    writer = StoreWriter.create(tmp_path, **_layout())
+
+    def full(fd, data, offset):
+        raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+
+    monkeypatch.setattr(os, "pwrite", full)
+    with pytest.raises(OSError, match="no space left on the device while writing .*targets.npy"):
+        writer.put(np.arange(4), np.zeros((4, 4)))
+    monkeypatch.undo()
+    writer.discard()  # what the pass does when a consumer fails
+    assert list(tmp_path.iterdir()) == []

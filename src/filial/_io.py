@@ -31,11 +31,23 @@ def is_temporary(path: Path) -> bool:
     return _TEMP_RE.match(path.name) is not None
 
 
-def _temp_name(path: Path) -> Path:
-    return path.with_name(f".{path.name}.tmp-{os.getpid()}")
+def temp_name(path: Path, pid: int | None = None) -> Path:
+    """The temporary that stands for ``path`` while process ``pid`` (default: this one) writes
+    it: in the same folder, named after its writer, so that :func:`sweep_temporaries` knows
+    when it is stale."""
+    return path.with_name(f".{path.name}.tmp-{os.getpid() if pid is None else pid}")
 
 
-def _fsync_dir(directory: Path) -> None:
+def no_space(path: Path) -> OSError:
+    """The error a full disk raises while ``path`` is written, saying what to do."""
+    return OSError(
+        errno.ENOSPC,
+        f"no space left on the device while writing {path}; nothing was written there "
+        "(the earlier file, if any, is intact). Free some space and rerun to resume",
+    )
+
+
+def fsync_dir(directory: Path) -> None:
     try:
         fd = os.open(directory, os.O_RDONLY)
     except OSError:  # some platforms (Windows) cannot open folders; the rename is still atomic
@@ -51,7 +63,7 @@ def _fsync_dir(directory: Path) -> None:
 def atomic_write(path: str | os.PathLike[str], write: Callable[[IO[bytes]], object]) -> Path:
     """Write a file through ``write(handle)`` so that it appears whole or not at all."""
     path = Path(path)
-    tmp = _temp_name(path)
+    tmp = temp_name(path)
     try:
         with open(tmp, "wb") as handle:
             write(handle)
@@ -62,16 +74,12 @@ def atomic_write(path: str | os.PathLike[str], write: Callable[[IO[bytes]], obje
     except OSError as exc:
         tmp.unlink(missing_ok=True)
         if exc.errno == errno.ENOSPC:
-            raise OSError(
-                errno.ENOSPC,
-                f"no space left on the device while writing {path}; nothing was written there "
-                "(the earlier file, if any, is intact). Free some space and rerun to resume",
-            ) from exc
+            raise no_space(path) from exc
         raise
     except BaseException:
         tmp.unlink(missing_ok=True)
         raise
-    _fsync_dir(path.parent)
+    fsync_dir(path.parent)
     return path
 
 

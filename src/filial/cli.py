@@ -12,6 +12,13 @@ another process (the message names the key or the problem; a run directory this 
 removed, and finished generations of an earlier run are kept as they were); 1 a failure during
 the run (finished generations are kept); 130 interrupted (the run directory is resumable, and
 the message says how).
+
+Under ``torchrun`` (``torchrun --nproc-per-node=N -m filial run RECIPE``) every process runs the
+command: it joins the process group (gloo on the CPU, nccl when training on CUDA, each process
+on ``cuda:LOCAL_RANK``), gives the recipe's training loader a ``DistributedSampler`` and each
+process ``batch_size / N`` samples per step (:func:`filial.data.sharded_loader`), and rank 0
+alone locks and writes the run directory, prints progress and the report; the lineages
+coordinate the rest (see :mod:`filial.distributed`).
 """
 
 from __future__ import annotations
@@ -19,6 +26,7 @@ from __future__ import annotations
 import argparse
 import functools
 import json
+import os
 import shlex
 import shutil
 import sys
@@ -29,15 +37,17 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
+import torch
 from torch import nn
 from torch.utils.data import DataLoader
 from tqdm.auto import tqdm
 
-from . import __version__
+from . import __version__, distributed
 from . import recipe as recipes
 from ._faults import fault_point
 from ._io import atomic_write
-from .data import check_loader
+from .data import check_loader, sharded_loader
+from .distributed import RankZeroFailed
 from .errors import InputError, LockedError, Problems
 from .fit import EpochFit, fit_epochs
 from .lineage import Lineage
@@ -203,10 +213,15 @@ def _lineage(
     )
 
 
-def _train(p: Plan, run: RecipeRunDirectory, lineages: list[Lineage], on_terminal: bool) -> None:
+def _train(
+    p: Plan,
+    run: RecipeRunDirectory,
+    lineages: list[Lineage],
+    on_terminal: bool,
+    device: torch.device,
+) -> None:
     training = p.recipe["training"]
     optimizer = recipes.build_optimizer(training)
-    device = recipes.training_device(training)
 
     def make_fit(count: int) -> EpochFit:
         scheduler = recipes.build_scheduler(training, count)
@@ -214,6 +229,7 @@ def _train(p: Plan, run: RecipeRunDirectory, lineages: list[Lineage], on_termina
 
     fit = make_fit(training["epochs"])
     views: list[SeedView] = []
+    on_terminal = on_terminal and distributed.is_main()
     for lineage in lineages:
         seed = lineage.settings["seed"]
         # On a terminal: a bar for the generations and one for the epochs, cleared when done;
@@ -235,10 +251,10 @@ def _train(p: Plan, run: RecipeRunDirectory, lineages: list[Lineage], on_termina
         baselines: dict[str, Mapping[str, Any]] = {}
         if p.recipe["run"]["baseline"] == "matched" and lineage.result.best is not None:
             baselines["matched"] = lineage.matched_baseline(make_fit)
-        # TensorBoard's arms view, from the records of the seeds finished so far.
-        result = lineage.result
-        views.append(SeedView(seed, result.records, result.best, baselines))
-        write_arms(run.tensorboard_path, views, finished=len(views) == len(lineages))
+        if distributed.is_main():  # TensorBoard's arms view, from the seeds finished so far
+            result = lineage.result
+            views.append(SeedView(seed, result.records, result.best, baselines))
+            write_arms(run.tensorboard_path, views, finished=len(views) == len(lineages))
 
 
 def _resume_command(argv: Sequence[str]) -> str:
@@ -246,35 +262,73 @@ def _resume_command(argv: Sequence[str]) -> str:
     return "filial " + shlex.join(kept)
 
 
+@dataclass
+class Launch:
+    """How this process runs the command: alone, or as one rank of a ``torchrun`` launch."""
+
+    device: torch.device  # where the students train
+    started: bool  # this command initialised the process group (and ends it)
+
+
+def _launch(p: Plan) -> Launch:
+    """Join the process group when ``torchrun`` started this process (its environment is set
+    and no group exists yet): gloo for CPU training, nccl for CUDA, on ``cuda:LOCAL_RANK``."""
+    device = recipes.training_device(p.recipe["training"])
+    dist = torch.distributed
+    if not dist.is_available() or not dist.is_torchelastic_launched() or dist.is_initialized():
+        return Launch(device, False)
+    if device.type == "cuda":
+        device = torch.device("cuda", int(os.environ.get("LOCAL_RANK", "0")))
+        torch.cuda.set_device(device)
+    dist.init_process_group("nccl" if device.type == "cuda" else "gloo")
+    return Launch(device, True)
+
+
 def _open(
-    args: argparse.Namespace, quiet: bool
-) -> tuple[Plan, RecipeRunDirectory, Claim, list[Lineage]]:
-    """Check the recipe, lock the run directory, save the recipe there first if the directory
-    holds no run yet (its identity: from then on every moment is resumable), then build one
-    Lineage per seed (each checks its data and model before it touches its folder and, with
-    ``--fresh``, clears it); with ``--fresh`` remove the rest of the earlier run last.
+    p: Plan, args: argparse.Namespace, quiet: bool
+) -> tuple[RecipeRunDirectory, Claim | None, list[Lineage]]:
+    """Lock the run directory, save the recipe there first if the directory holds no run yet
+    (its identity: from then on every moment is resumable), then build one Lineage per seed
+    (each checks its data and model before it touches its folder and, with ``--fresh``, clears
+    it); with ``--fresh`` remove the rest of the earlier run last.
 
     On a refusal or an interruption nothing is left behind that was not there: the locks are
     released, and what this call wrote into a directory that held no run is removed.
-    """
+
+    Note: several processes. Rank 0 alone checks and locks the run directory, saves the recipe,
+    clears an earlier run (the other ranks wait, and raise :class:`RankZeroFailed` if it
+    fails); every rank builds the lineages, which coordinate themselves."""
     taken: Claim | None = None
     lineages: list[Lineage] = []
+    run = RecipeRunDirectory(p.recipe["run"]["run_dir"])
     new_run = False
-    try:
-        p = plan(args.recipe, args.set, args.run_dir)
-        run, taken = _prepare_run_dir(p.recipe, args.fresh)
+
+    def claim_and_identify() -> tuple[RecipeRunDirectory, Claim, bool]:
+        claimed, lock = _prepare_run_dir(p.recipe, args.fresh)
         fault_point("start", "claimed")
-        new_run = not run.recipe_path.is_file()
-        if new_run:
-            _save_recipe(p.recipe, run)
+        new = not claimed.recipe_path.is_file()
+        if new:
+            _save_recipe(p.recipe, claimed)
             fault_point("start", "recipe")
+        return claimed, lock, new
+
+    try:
+        prepared = distributed.on_rank_zero(
+            claim_and_identify, f"opening the run directory {run.root}"
+        )
+        if prepared is not None:
+            run, taken, new_run = prepared
         seeds = p.recipe["run"]["seeds"]
         for s in seeds:
             lineages.append(_lineage(p, run, s, quiet=quiet, fresh=args.fresh))
             fault_point("start", seed_name(s))
-        if args.fresh and not new_run:
-            _start_over(run, seeds)
-            _save_recipe(p.recipe, run)
+
+        def finish_opening() -> None:
+            if args.fresh and not new_run:
+                _start_over(run, seeds)
+                _save_recipe(p.recipe, run)
+
+        distributed.on_rank_zero(finish_opening, f"saving the recipe in {run.root}")
     except BaseException:
         for lineage in lineages:
             lineage.close()
@@ -285,7 +339,15 @@ def _open(
             elif new_run:
                 _remove_all_but_the_lock(taken.directory)
         raise
-    return p, run, taken, lineages
+    return run, taken, lineages
+
+
+def _say(message: str) -> None:
+    """An error on stderr: rank 0's plainly, another rank's with its rank (every rank says
+    what stopped it; the report and the resume command come from rank 0)."""
+    if not distributed.is_main():
+        message = message.replace("filial: ", f"filial (rank {distributed.rank()}): ", 1)
+    print(message, file=sys.stderr)
 
 
 def _remove_all_but_the_lock(directory: Path) -> None:
@@ -296,52 +358,80 @@ def _remove_all_but_the_lock(directory: Path) -> None:
 
 
 def _run(args: argparse.Namespace, argv: Sequence[str]) -> int:
-    on_terminal = sys.stderr.isatty()
-    resume = _resume_command(argv)
+    launch: Launch | None = None
     try:
-        p, run, taken, lineages = _open(args, quiet=on_terminal)
-    except (recipes.RecipeError, InputError, LockedError, ValueError, TypeError) as exc:
-        print(f"filial: {exc}", file=sys.stderr)
+        p = plan(args.recipe, args.set, args.run_dir)
+        launch = _launch(p)
+        if distributed.is_distributed():
+            p.train = sharded_loader(p.train, distributed.world_size(), distributed.rank())
+        on_terminal = sys.stderr.isatty() and distributed.is_main()
+        run, taken, lineages = _open(p, args, quiet=on_terminal)
+    except (
+        recipes.RecipeError,
+        InputError,
+        LockedError,
+        ValueError,
+        TypeError,
+        RankZeroFailed,
+    ) as exc:
+        _say(f"filial: {exc}")
+        _end(launch, wait=False)
         return EXIT_USAGE
     except KeyboardInterrupt:
-        print(
+        _say(
             "\nfilial: interrupted before any generation trained; nothing new was kept. Run it "
-            f"again with:\n  filial {shlex.join(argv)}",
-            file=sys.stderr,
+            f"again with:\n  filial {shlex.join(argv)}"
         )
+        _end(launch, wait=False)
         return EXIT_INTERRUPTED
+    resume = _resume_command(argv)
     kept = (
         f"--fresh removed the earlier run in {run.root} before this one started; the "
         "generations this run finished are kept there"
         if args.fresh
         else f"Finished generations are kept in {run.root}"
     )
+    done = False
     try:
-        _train(p, run, lineages, on_terminal)
+        _train(p, run, lineages, on_terminal, launch.device)
+        done = True
     except InputError as exc:  # found while running (e.g. a model whose width changes)
-        print(f"\nfilial: {exc}\n{kept}; fix the input and rerun\n  {resume}", file=sys.stderr)
+        _say(f"\nfilial: {exc}\n{kept}; fix the input and rerun\n  {resume}")
         return EXIT_USAGE
     except KeyboardInterrupt:
-        print(
+        _say(
             f"\nfilial: interrupted. {run.root} keeps every finished generation; resume with:\n"
-            f"  {resume}",
-            file=sys.stderr,
+            f"  {resume}"
         )
         return EXIT_INTERRUPTED
     except Exception as exc:  # report, keep the run directory, exit 1
         traceback.print_exc(file=sys.stderr)
-        print(
+        _say(
             f"filial: the run failed: {type(exc).__name__}: {exc}\n"
-            f"{kept}; fix the cause and rerun\n  {resume}",
-            file=sys.stderr,
+            f"{kept}; fix the cause and rerun\n  {resume}"
         )
         return EXIT_FAILED
     finally:
         for lineage in lineages:
             lineage.close()
-        taken.release()
-    print(format_report(summarize(run.root)))
+        if taken is not None:
+            taken.release()
+        if not done:
+            _end(launch, wait=False)
+    if distributed.is_main():
+        print(format_report(summarize(run.root)))
+    _end(launch, wait=True)
     return EXIT_OK
+
+
+def _end(launch: Launch | None, wait: bool) -> None:
+    """Leave the process group this command joined; after a barrier when the run succeeded, so
+    that no rank leaves while another still reads what rank 0 wrote (never after a failure,
+    where another rank may be gone)."""
+    if launch is not None and launch.started and distributed.is_distributed():
+        if wait:
+            distributed.barrier()
+        torch.distributed.destroy_process_group()
 
 
 def _report(args: argparse.Namespace) -> int:

@@ -24,8 +24,9 @@ student epoch see the same tensors for ``(i, v)``. A batch sampler index then ca
 from __future__ import annotations
 
 import inspect
+import random
 from collections.abc import Iterator, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
@@ -34,14 +35,16 @@ from torch.utils.data import (
     BatchSampler,
     DataLoader,
     Dataset,
+    DistributedSampler,
     IterableDataset,
+    RandomSampler,
     Sampler,
     SequentialSampler,
 )
 
 from .errors import InputError
 from .losses import TopKTargets
-from .seeding import derive_seed, preserved_rng, samplers_of, seed_globals
+from .seeding import derive_seed, preserved_rng, samplers_of
 from .store import TargetStore
 
 _LOADER_PARAMS = set(inspect.signature(DataLoader.__init__).parameters)
@@ -113,6 +116,17 @@ def _mix(z: int) -> int:
     return z ^ (z >> 31)
 
 
+_GOLDEN = np.uint64(0x9E3779B97F4A7C15)
+
+
+def _mix_array(z: np.ndarray) -> np.ndarray:
+    """:func:`_mix` over a uint64 array (numpy's unsigned array arithmetic wraps mod 2**64)."""
+    z = z + _GOLDEN
+    z = (z ^ (z >> np.uint64(30))) * np.uint64(0xBF58476D1CE4E5B9)
+    z = (z ^ (z >> np.uint64(27))) * np.uint64(0x94D049BB133111EB)
+    return z ^ (z >> np.uint64(31))
+
+
 @dataclass(frozen=True)
 class Replay:
     """Fetch sample ``i`` in view ``v`` under generators seeded from ``(seed, i, v)``.
@@ -123,6 +137,11 @@ class Replay:
 
     seed: int
     views: int
+    # Which of Python's and numpy's generators the dataset was seen drawing from, in this
+    # process (see _replayed): learnt as batches are fetched, never part of the replay's value.
+    draws: list[bool] = field(
+        default_factory=lambda: [False, False], compare=False, repr=False, hash=False
+    )
 
     def seed_of(self, index: int, view: int) -> int:
         """The 31-bit seed of sample ``index`` in ``view``, through two rounds of the SplitMix64
@@ -134,6 +153,19 @@ class Replay:
         True
         """
         return _mix(_mix(self.seed * 0x9E3779B97F4A7C15 + index) + view) >> 33
+
+    def seeds_of(self, indices: Sequence[int], views: Sequence[int]) -> list[int]:
+        """:meth:`seed_of` of every ``(indices[k], views[k])``, computed for the whole batch at
+        once (the same values: a test compares them).
+
+        >>> Replay(seed=7, views=3).seeds_of([5, 0], [0, 2]) == [
+        ...     Replay(7, 3).seed_of(5, 0), Replay(7, 3).seed_of(0, 2)]
+        True
+        """
+        base = np.uint64((self.seed * 0x9E3779B97F4A7C15) & _MASK64)
+        z = _mix_array(np.asarray(indices, dtype=np.uint64) + base)
+        z = _mix_array(z + np.asarray(views, dtype=np.uint64))
+        return [int(s) for s in (z >> np.uint64(33)).tolist()]
 
     def decode(self, codes: Sequence[int]) -> tuple[list[int], list[int]]:
         """Split batch-sampler codes ``i * views + v`` into sample indices and views."""
@@ -203,18 +235,55 @@ class IndexedDataset(Dataset):
             inner = getattr(dataset, "__getitems__", None)
             samples = inner(indices) if inner else [dataset[i] for i in indices]
             return _Fetched(indices, samples)
-        # Note: replaying augmentation. Each sample is fetched right after seeding torch's,
-        # Python's and numpy's global generators from (seed, i, v), so whatever random crop or
-        # flip the dataset draws is the same in the teacher pass and in every student epoch, in
-        # any worker. One fork per batch (not per sample) keeps the caller's streams where they
-        # were: dropout, initialisation and the user's samplers draw exactly as without replay.
         samples_at, views = replay.decode(indices)
-        samples = []
+        seeds = replay.seeds_of(samples_at, views)
         with preserved_rng():
-            for i, v in zip(samples_at, views, strict=True):
-                seed_globals(replay.seed_of(i, v), accelerators=False)
-                samples.append(dataset[i])
+            samples = _replayed(dataset, samples_at, seeds, replay.draws)
         return _Fetched(samples_at, samples, views, codes=indices)
+
+
+def _numpy_state_is(state: Any) -> bool:
+    now: Any = np.random.get_state()
+    return bool(now[0] == state[0] and np.array_equal(now[1], state[1]) and now[2:] == state[2:])
+
+
+def _replayed(dataset: Any, indices: list[int], seeds: list[int], draws: list[bool]) -> list[Any]:
+    """``dataset[i]`` for every ``i`` of ``indices``, each fetched right after seeding the
+    global generators from its seed (inside the caller's fork of them).
+
+    Note: replaying augmentation. Each sample is fetched right after seeding torch's,
+    Python's and numpy's global generators from (seed, i, v), so whatever random crop or flip
+    the dataset draws is the same in the teacher pass and in every student epoch, in any
+    worker. One fork per batch (not per sample) keeps the caller's streams where they were:
+    dropout, initialisation and the user's samplers draw exactly as without replay.
+
+    Note: cheaper seeding. Seeding Python's and numpy's generators costs ~4-6 us a sample
+    each, more than many samples' augmentation, and most datasets (torchvision's transforms)
+    draw from torch's alone. A generator the fetches do not draw from cannot change a sample,
+    so those two are seeded only once the dataset has been seen drawing from them (``draws``,
+    kept with the replay): until then their states are compared before and after the batch,
+    and a batch that moved one is fetched again with it seeded for every sample. The samples
+    are those of seeding all three every time, whatever the dataset does; only the cost
+    differs (one batch fetched twice, per process, for a dataset that uses them).
+    """
+    python, numpy_ = draws
+    py_state = None if python else random.getstate()
+    np_state = None if numpy_ else np.random.get_state()
+    samples = []
+    torch_seed = torch.default_generator.manual_seed
+    for i, seed in zip(indices, seeds, strict=True):
+        torch_seed(seed)  # as seed_globals(seed, accelerators=False) does, generator by generator
+        if python:
+            random.seed(seed)
+        if numpy_:
+            np.random.seed(seed)
+        samples.append(dataset[i])
+    moved_py = py_state is not None and random.getstate() != py_state
+    moved_np = np_state is not None and not _numpy_state_is(np_state)
+    if not (moved_py or moved_np):
+        return samples
+    draws[0], draws[1] = python or moved_py, numpy_ or moved_np
+    return _replayed(dataset, indices, seeds, draws)
 
 
 class ViewChoice:
@@ -355,6 +424,60 @@ def training_loader(
         persistent_workers=loader.persistent_workers,
         **_common_settings(loader),
         **extra,
+    )
+
+
+def sharded_loader(loader: DataLoader, world: int, rank: int) -> DataLoader:
+    """A training ``loader`` built for one process, as rank ``rank``'s share of ``world``.
+
+    The loader gets a ``DistributedSampler`` over its dataset (shuffled when the loader
+    shuffled; its ``seed`` is set per generation by the lineage) and ``batch_size // world``
+    samples per batch, so that one step of all ranks together still sees the loader's batch;
+    everything else (workers, collate_fn, pinning, ``drop_last``) is kept. A loader that
+    shards already is returned as it is. Only plain loaders (``batch_size`` with or without
+    ``shuffle``) can be sharded this way; others raise :class:`LoaderContractError`.
+    """
+    if any(isinstance(s, DistributedSampler) for s in samplers_of(loader)):
+        return loader
+    sampler = loader.sampler
+    plain = type(loader.batch_sampler) is BatchSampler and (
+        type(sampler) is SequentialSampler
+        or (
+            type(sampler) is RandomSampler
+            and not sampler.replacement
+            and sampler._num_samples is None
+        )
+    )
+    batch = loader.batch_size
+    if not plain or batch is None:
+        raise LoaderContractError(
+            "under a process group the training loader needs a DistributedSampler; filial can "
+            "add one to a loader built with batch_size (and shuffle), but this one has a "
+            f"{type(loader.batch_sampler).__name__} over a {type(sampler).__name__}. Give the "
+            "loader a torch.utils.data.DistributedSampler yourself"
+        )
+    if batch % world:
+        raise LoaderContractError(
+            f"the training loader's batch_size ({batch}) is the batch of one step over all "
+            f"{world} processes, so it should be a multiple of {world}, but got "
+            f"batch_size={batch}"
+        )
+    shard: DistributedSampler[Any] = DistributedSampler(
+        loader.dataset,
+        num_replicas=world,
+        rank=rank,
+        shuffle=type(sampler) is RandomSampler,
+        seed=0,
+    )
+    return DataLoader(
+        loader.dataset,
+        batch_size=batch // world,
+        sampler=shard,
+        drop_last=loader.drop_last,
+        collate_fn=loader.collate_fn,
+        generator=loader.generator,
+        persistent_workers=loader.persistent_workers,
+        **_common_settings(loader),
     )
 
 

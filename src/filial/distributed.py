@@ -4,7 +4,9 @@ filial never starts a process group. When the user's script has initialised one
 (``torch.distributed.init_process_group``, e.g. under ``torchrun``), a lineage runs on every rank:
 each rank trains on its shard of the training set (the user's ``DistributedSampler``) and runs the
 evaluation passes on its shard; :func:`gather_indexed` brings the shards' outputs to rank 0 with
-tensor collectives; rank 0 alone writes the run directory and decides, and
+tensor collectives (held-out and test sets, which are small), while the teacher pass over the
+training set writes each rank's rows straight into the store and only counts per sample index
+meet on rank 0 (:func:`check_counts`); rank 0 alone writes the run directory and decides, and
 :func:`broadcast_ints` / :func:`on_rank_zero` tell the other ranks. Without a process group every
 function here behaves as rank 0 of a world of one and sends nothing.
 
@@ -22,9 +24,11 @@ which the user sets with ``torch.cuda.set_device(local_rank)``, as usual under n
 from __future__ import annotations
 
 import hashlib
-from collections.abc import Callable, Sequence, Sized
+import itertools
+from collections.abc import Callable, Iterator, Sequence, Sized
 from typing import TypeVar
 
+import numpy as np
 import torch
 from torch import nn
 from torch.utils.data import DistributedSampler
@@ -150,6 +154,32 @@ def all_sum(values: Sequence[float | torch.Tensor]) -> list[float]:
     return [float(v) for v in tensor.cpu().tolist()]
 
 
+def all_max(values: Sequence[float | torch.Tensor]) -> list[float]:
+    """The largest over the ranks of each of a few numbers (float64, one all-reduce; NaN if
+    any rank's is NaN)."""
+    if not is_distributed():
+        return [float(v) for v in values]
+    device = collective_device()
+    tensor = torch.stack(
+        [torch.as_tensor(v, dtype=torch.float64).to(device).reshape(()) for v in values]
+    )
+    nan = torch.isnan(tensor).to(torch.float64)  # reductions need not propagate NaN
+    both = torch.stack([tensor.nan_to_num(nan=-torch.inf), nan])
+    torch.distributed.all_reduce(both, op=torch.distributed.ReduceOp.MAX)
+    found = torch.where(both[1] > 0, torch.nan, both[0])
+    return [float(v) for v in found.cpu().tolist()]
+
+
+def sum_over_ranks(tensor: torch.Tensor) -> torch.Tensor:
+    """The elementwise sum over the ranks of a small tensor (every rank passes one of the same
+    shape), on the CPU; the tensor itself in a single process."""
+    if not is_distributed():
+        return tensor.cpu()
+    sent = tensor.to(collective_device(tensor.device)).contiguous().clone()
+    torch.distributed.all_reduce(sent)
+    return sent.cpu()
+
+
 def ranks_differing(text: str) -> list[int]:
     """The ranks whose ``text`` differs from rank 0's (compared by sha256, 32 bytes a rank)."""
     if not is_distributed():
@@ -226,16 +256,41 @@ def align_replicas(model: nn.Module) -> None:
             buffer.copy_(sent.to(buffer.device, buffer.dtype))
 
 
+class _InOrderShard(DistributedSampler):
+    """torch's DistributedSampler without shuffling or dropping, giving the very same indices
+    lazily: its own ``__iter__`` builds a Python list of every index of the dataset (about 36
+    bytes an index: 180 MB for a pass over ImageNet's images in 4 views), this one counts."""
+
+    def __iter__(self) -> Iterator[int]:
+        size = len(self.dataset)  # type: ignore[arg-type]
+        start = padding_start(self)
+        # the rank's own positions, then DistributedSampler's padding: the list repeated from
+        # its start, so global position g >= size holds index (g - size) % size
+        padded = range(self.rank + start * self.num_replicas, self.total_size, self.num_replicas)
+        return itertools.chain(
+            range(self.rank, size, self.num_replicas), ((g - size) % size for g in padded)
+        )
+
+
 def shard_sampler(dataset: Sized) -> DistributedSampler:
     """This rank's share of ``dataset`` for an evaluation pass: torch's DistributedSampler in
-    index order (no shuffling, no samples dropped; padded so that every rank has as many)."""
-    return DistributedSampler(
+    index order (no shuffling, no samples dropped; padded so that every rank has as many),
+    yielding its indices without listing them all first."""
+    return _InOrderShard(
         dataset,  # type: ignore[arg-type]
         num_replicas=world_size(),
         rank=rank(),
         shuffle=False,
         drop_last=False,
     )
+
+
+def padding_start(sampler: DistributedSampler) -> int:
+    """The first of ``sampler``'s positions that is padding (see :func:`padding_rows`): every
+    position from there on is."""
+    if sampler.drop_last:
+        raise ValueError("a sampler that drops samples cannot cover the whole dataset")
+    return len(range(sampler.rank, len(sampler.dataset), sampler.num_replicas))  # type: ignore[arg-type]
 
 
 def padding_rows(sampler: DistributedSampler) -> torch.Tensor:
@@ -248,10 +303,7 @@ def padding_rows(sampler: DistributedSampler) -> torch.Tensor:
     or beyond the dataset's length are the repeats; they are known before the pass, so they are
     dropped by position rather than by guessing which of two equal indices is the spare.
     """
-    if sampler.drop_last:
-        raise ValueError("a sampler that drops samples cannot cover the whole dataset")
-    positions = torch.arange(sampler.rank, sampler.total_size, sampler.num_replicas)
-    return positions >= len(sampler.dataset)  # type: ignore[arg-type]
+    return torch.arange(sampler.num_samples) >= padding_start(sampler)
 
 
 def assemble(
@@ -271,26 +323,19 @@ def assemble(
     flat = torch.cat([i.to(torch.int64).cpu() for i in indices])
     keep = flat >= 0
     kept = flat[keep]
-    problems = []
     outside = kept[kept >= size]
-    if len(outside):
-        problems.append(f"{len(outside)} rows name indices beyond {size - 1}: {_some(outside)}")
-        kept = kept[kept < size]
+    kept = kept[kept < size]
     counts = torch.bincount(kept, minlength=size)
     missing = torch.nonzero(counts == 0).flatten()
     twice = torch.nonzero(counts > 1).flatten()
-    if len(missing):
-        problems.append(f"{len(missing)} of {size} sample indices are missing: {_some(missing)}")
-    if len(twice):
-        problems.append(
-            f"{len(twice)} sample indices arrived more than once (not as the sampler's "
-            f"padding): {_some(twice)}"
-        )
-    if problems:
-        raise CoverageError(
-            "the evaluation pass did not cover the dataset exactly once, so no target can be "
-            "trusted to belong to its sample: " + "; ".join(problems)
-        )
+    problem = _coverage_problem(
+        size,
+        (len(outside), outside[:_SHOWN].tolist()),
+        (len(missing), missing[:_SHOWN].tolist()),
+        (len(twice), twice[:_SHOWN].tolist()),
+    )
+    if problem:
+        raise CoverageError(problem)
     assembled = []
     for parts in values:
         rows = torch.cat([p.cpu() for p in parts])[keep]
@@ -300,9 +345,98 @@ def assemble(
     return assembled
 
 
-def _some(indices: torch.Tensor) -> str:
-    shown = ", ".join(str(int(i)) for i in indices[:_SHOWN])
-    return shown + (", ..." if len(indices) > _SHOWN else "")
+Found = tuple[int, Sequence[int]]  # how many indices, and the first few of them
+
+
+def _some(found: Found) -> str:
+    count, first = found
+    shown = ", ".join(str(int(i)) for i in first[:_SHOWN])
+    return shown + (", ..." if count > _SHOWN else "")
+
+
+def _coverage_problem(size: int, outside: Found, missing: Found, twice: Found) -> str:
+    """The coverage error's message ("" when every index in ``range(size)`` came once)."""
+    problems = []
+    if outside[0]:
+        problems.append(f"{outside[0]} rows name indices beyond {size - 1}: {_some(outside)}")
+    if missing[0]:
+        problems.append(f"{missing[0]} of {size} sample indices are missing: {_some(missing)}")
+    if twice[0]:
+        problems.append(
+            f"{twice[0]} sample indices arrived more than once (not as the sampler's "
+            f"padding): {_some(twice)}"
+        )
+    if not problems:
+        return ""
+    return (
+        "the evaluation pass did not cover the dataset exactly once, so no target can be "
+        "trusted to belong to its sample: " + "; ".join(problems)
+    )
+
+
+_COUNT_CHUNK = 1 << 20  # indices per reduction when counts meet on rank 0 (4 MiB of int32)
+
+
+def check_counts(counts: np.ndarray, outside: Found) -> None:
+    """Check that the ranks' passes together delivered every index exactly once, from counts
+    alone: ``counts[i]`` is how often this rank's pass delivered index ``i`` (its padding
+    rows dropped; any small integer type, 2 standing for "more than once"), ``outside`` the
+    rows that named an index beyond ``len(counts)``.
+
+    The counts are summed onto rank 0 in chunks of ``_COUNT_CHUNK`` (so that no rank holds
+    more than one chunk in a wider type), rank 0 names what is wrong, and every rank raises
+    :class:`CoverageError` (a gap, a duplicate, an index out of range). In one process the
+    counts are checked as they are.
+
+    >>> check_counts(np.array([1, 1, 1], dtype=np.uint8), (0, []))
+    >>> try:
+    ...     check_counts(np.array([1, 0, 2], dtype=np.uint8), (0, []))
+    ... except CoverageError as exc:
+    ...     print(*str(exc).split("sample: ", 1)[1].split("; "), sep="\\n")
+    1 of 3 sample indices are missing: 1
+    1 sample indices arrived more than once (not as the sampler's padding): 2
+    """
+    size = len(counts)
+    beyond = [int(sum_over_ranks(torch.tensor([int(outside[0])], dtype=torch.int64))[0])]
+    examples = _first_outside(outside)
+    missing: list[int] = []
+    twice: list[int] = []
+    totals = [0, 0]
+    device = collective_device()
+    for start in range(0, size, _COUNT_CHUNK):
+        chunk = torch.from_numpy(counts[start : start + _COUNT_CHUNK].astype(np.int32))
+        if is_distributed():
+            chunk = chunk.to(device)
+            torch.distributed.reduce(chunk, dst=MAIN)
+            chunk = chunk.cpu()
+        if is_main():
+            for found, where, slot in ((missing, chunk == 0, 0), (twice, chunk > 1, 1)):
+                hits = torch.nonzero(where).flatten()
+                totals[slot] += len(hits)
+                found.extend((hits[: _SHOWN - len(found)] + start).tolist())
+    problem = ""
+    if is_main():
+        problem = _coverage_problem(
+            size, (beyond[0], examples), (totals[0], missing), (totals[1], twice)
+        )
+    (failed,) = broadcast_ints([int(bool(problem))] if is_main() else None, 1)
+    if failed:
+        raise CoverageError(
+            problem
+            or "rank 0 found that the evaluation pass did not cover the dataset exactly "
+            "once; the indices are named in rank 0's error"
+        )
+
+
+def _first_outside(outside: Found) -> list[int]:
+    """The first few out-of-range indices of every rank, on rank 0."""
+    mine = list(outside[1][:_SHOWN]) + [-1] * (_SHOWN - len(outside[1][:_SHOWN]))
+    if not is_distributed():
+        return [i for i in mine if i >= 0]
+    tensor = torch.tensor(mine, dtype=torch.int64).to(collective_device())
+    parts = [torch.empty_like(tensor) for _ in range(world_size())]
+    torch.distributed.all_gather(parts, tensor)
+    return [int(i) for part in parts for i in part.cpu().tolist() if i >= 0][:_SHOWN]
 
 
 def gather_indexed(

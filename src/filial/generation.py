@@ -2,13 +2,14 @@
 
 A :class:`Generation` is handed out by :class:`~filial.lineage.Lineage`; the user trains
 ``gen.model`` on ``gen.loader`` with ``gen.loss`` and calls ``gen.finish(model)``. ``finish``
-evaluates the student (held-out, the training set against the original labels, test), runs the
-teacher pass over the training set in index order, and then hands over a function that scores
-the passes and writes, each atomically and in this order, the checkpoint, the held-out outputs
-and the target store, returning what it measured (:class:`Measured`). The lineage's ``conclude``
-runs that function on the rank that writes, adds what needs earlier generations (ensemble,
-agreement), decides and records. Nothing here takes part in the decision or knows other
-generations.
+runs the teacher pass over the training set in index order (streamed into the target store's
+temporary files, with the record's training-set figures summed on the way), evaluates the
+student (held-out, test), and then hands over a function that scores the passes and writes,
+each atomically and in this order, the checkpoint, the held-out outputs and the target store
+(published: renamed into place, manifest last), returning what it measured (:class:`Measured`).
+The lineage's ``conclude`` runs that function on the rank that writes, adds what needs earlier
+generations (ensemble, agreement), decides and records. Nothing here takes part in the
+decision or knows other generations.
 """
 
 from __future__ import annotations
@@ -31,20 +32,13 @@ from .checkpoint import save_checkpoint, unwrap
 from .data import Replay, training_loader
 from .evaluation import Predictions, evaluate, finite_module
 from .losses import StudentLoss
-from .metrics import Metric
+from .metrics import Metric, summed_form
 from .observers import Observer
 from .records import EpochEntry, GenerationRecord, mode_of
 from .rundir import RunDirectory
 from .seeding import Stream, stream_seed
 from .store import TargetStore
-from .teacher import (
-    OnlineTeacherLoader,
-    StoreSpec,
-    TeacherPass,
-    target_statistics,
-    training_pass,
-    write_targets,
-)
+from .teacher import FigureSpec, OnlineTeacherLoader, StoreSpec, TeacherPass, training_pass
 
 
 @dataclass(frozen=True)
@@ -226,22 +220,31 @@ class Generation:
         self._passes.close(self.history)
         seed = stream_seed(inputs.seed, Stream.PASSES, self.index)
         fault = f"gen{self.index}" if armed("teacher") else None
-        # Every rank takes part in the passes (each scores its shard); only rank 0 gets them.
+        # Every rank takes part in the passes (each scores its shard and writes its rows of the
+        # store); only rank 0 gets them.
         distributed.align_replicas(unwrap(model))
+        loss = inputs.loss
         passed = training_pass(
             model,
             inputs.train_loader,
             inputs.replay,
             seed,
-            all_views=inputs.write_targets,
+            store=(inputs.store, self.directory) if inputs.write_targets else None,
+            figures=FigureSpec(loss.kind, loss.temperature, inputs.metric),
             fault=fault,
         )
-        heldout = evaluate(model, inputs.heldout_loader, seed)
-        test = evaluate(model, inputs.test_loader, seed) if inputs.test_loader is not None else None
-        write = None
-        if passed is not None and heldout is not None:
-            write = functools.partial(self._write, model, passed, heldout, test)
-        self.record = self._conclude(self, write)
+        try:
+            heldout = evaluate(model, inputs.heldout_loader, seed)
+            test = None
+            if inputs.test_loader is not None:
+                test = evaluate(model, inputs.test_loader, seed)
+            write = None
+            if passed is not None and heldout is not None:
+                write = functools.partial(self._write, model, passed, heldout, test)
+            self.record = self._conclude(self, write)
+        finally:
+            if passed is not None:
+                passed.discard()  # a store that was not published (diverged, or a failure)
         return self.record
 
     def _write(
@@ -253,11 +256,11 @@ class Generation:
     ) -> Measured:
         """Score the passes and write this generation's files (on the rank that writes)."""
         inputs = self._inputs
-        train, metric = passed.view0, inputs.metric
+        metric = inputs.metric
+        figures = passed.figures
+        assert figures is not None  # finish always asks for them
         diverged = not (
-            finite_module(model)
-            and bool(torch.isfinite(passed.outputs).all())
-            and bool(torch.isfinite(heldout.outputs).all())
+            finite_module(model) and passed.finite and bool(torch.isfinite(heldout.outputs).all())
         )
         record: Any = {
             "generation": self.index,
@@ -265,7 +268,7 @@ class Generation:
             "mode": mode_of(self.teacher, online=self.online_teacher is not None),
             "heldout": None if diverged else metric(heldout.outputs, heldout.labels),
             "test": None,
-            "train": None if diverged else metric(train.outputs, train.labels),
+            "train": None if diverged else self._train_metric(passed),
             "ensemble": None,
             "agreement": None,
             "diverged": diverged,
@@ -273,14 +276,24 @@ class Generation:
         if test is not None and not diverged:
             record["test"] = metric(test.outputs, test.labels)
         if not diverged:
-            loss = inputs.loss
-            record.update(target_statistics(loss.kind, loss.temperature, train))
+            record.update(figures.statistics)
         self._save(model, passed, heldout, record)
         record["epochs"] = sorted(self.history, key=lambda entry: entry["epoch"])
         record["passes"] = self._passes.count  # over gen.loader, by the user's loop or fit
         record["batches"] = self._passes.batches
         record["seconds"] = time.perf_counter() - self._started
         return Measured(record, heldout)
+
+    def _train_metric(self, passed: TeacherPass) -> float:
+        """The metric on the training set against its labels: from the pass's sums, or (a
+        metric without a summed form) on view 0's outputs of the whole set."""
+        metric = self._inputs.metric
+        form = summed_form(metric)
+        if form is not None:
+            assert passed.figures is not None and passed.figures.metric_sums is not None
+            return float(form.from_sums(passed.figures.metric_sums))
+        assert passed.view0 is not None  # kept whole for this metric
+        return metric(passed.view0.outputs, passed.view0.labels)
 
     def _save(
         self, model: nn.Module, passed: TeacherPass, heldout: Predictions, record: Any
@@ -297,8 +310,8 @@ class Generation:
             # An earlier attempt at this generation may have left a store; it is never a teacher.
             for name in (TargetStore.MANIFEST, TargetStore.ARRAY, TargetStore.INDEX):
                 (directory / name).unlink(missing_ok=True)
-        elif self._inputs.write_targets:
-            write_targets(self._inputs.store, directory, passed.outputs, teacher_sha)
+        elif passed.store is not None:
+            passed.store.publish(self._inputs.store.fingerprint, teacher_sha)
         record["checkpoint"] = self._inputs.run.checkpoint_entry(self.index)
         record["checkpoint_sha256"] = teacher_sha
 

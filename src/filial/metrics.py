@@ -4,6 +4,12 @@ A metric sees the whole evaluated set at once (outputs ``(N, C)`` and labels on 
 non-decomposable metrics (AUC, F1) work. The default is accuracy for integer labels and negative
 mean squared error for floating-point labels.
 
+The training-set figure of a record comes from the teacher pass, which holds no outputs of the
+whole training set: a metric that is a sum over samples is computed there batch by batch
+(:class:`SummedMetric`: ``batch_sums`` and ``from_sums``, as the two defaults are), and any
+other metric is handed view 0's outputs of the whole training set, kept in memory for it
+(``N x C`` float32 on the CPU).
+
 >>> import torch
 >>> accuracy(torch.tensor([[0.1, 0.9], [0.8, 0.2]]), torch.tensor([1, 1]))
 0.5
@@ -12,13 +18,69 @@ mean squared error for floating-point labels.
 from __future__ import annotations
 
 import math
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
+from typing import Any, Protocol, runtime_checkable
 
 import torch
 
 from .errors import InputError
 
 Metric = Callable[[torch.Tensor, torch.Tensor], float]
+Sums = Sequence[torch.Tensor | float]
+
+
+@runtime_checkable
+class SummedMetric(Protocol):
+    """A metric that is a function of sums over samples, computed batch by batch.
+
+    ``batch_sums(outputs, labels)`` gives one batch's sums (numbers or 0-d tensors on the
+    outputs' device, which stay there until the pass ends); the sums of every batch (and rank)
+    are added up and ``from_sums(totals)`` gives the metric. Give a metric of your own these two
+    methods (besides ``__call__`` for the held-out and test sets) and the training-set figure
+    is streamed like the defaults' instead of needing the whole set in memory.
+
+    >>> import torch
+    >>> form = summed_form(accuracy)
+    >>> outputs = torch.tensor([[0.1, 0.9], [0.8, 0.2], [0.3, 0.7]])
+    >>> labels = torch.tensor([1, 1, 1])
+    >>> first = form.batch_sums(outputs[:2], labels[:2])
+    >>> second = form.batch_sums(outputs[2:], labels[2:])
+    >>> totals = [float(a) + float(b) for a, b in zip(first, second)]
+    >>> form.from_sums(totals) == accuracy(outputs, labels)
+    True
+    """
+
+    def batch_sums(self, outputs: torch.Tensor, labels: torch.Tensor) -> Sums: ...
+
+    def from_sums(self, sums: Sequence[float]) -> float: ...
+
+
+class AccuracySums:
+    """:func:`accuracy` as sums: hits and rows (integers, so the total is exact and the value
+    is the one :func:`accuracy` gives on the whole set)."""
+
+    def batch_sums(self, outputs: torch.Tensor, labels: torch.Tensor) -> Sums:
+        return self.sums_of_predictions(outputs.argmax(dim=1), labels)
+
+    def sums_of_predictions(self, predicted: torch.Tensor, labels: torch.Tensor) -> Sums:
+        """The sums from the argmax of each row (for a caller that has it already)."""
+        hits = predicted == labels
+        return [hits.sum(), hits.numel()]
+
+    def from_sums(self, sums: Sequence[float]) -> float:
+        return float(sums[0]) / float(sums[1])
+
+
+class _SquaredErrorSums:
+    """:func:`negative_mse` as sums: squared errors (in float64) and elements. Equal to
+    :func:`negative_mse` on the whole set up to its float32 rounding."""
+
+    def batch_sums(self, outputs: torch.Tensor, labels: torch.Tensor) -> Sums:
+        errors = (outputs - labels.reshape(outputs.shape).to(outputs.dtype)).pow(2)
+        return [errors.double().sum(), errors.numel()]
+
+    def from_sums(self, sums: Sequence[float]) -> float:
+        return -float(sums[0]) / float(sums[1])
 
 
 def accuracy(outputs: torch.Tensor, labels: torch.Tensor) -> float:
@@ -95,3 +157,16 @@ class _FloatMetric:
 
 def as_float_metric(metric: Metric, name: str) -> Metric:
     return metric if isinstance(metric, _FloatMetric) else _FloatMetric(metric, name)
+
+
+def summed_form(metric: Any) -> SummedMetric | None:
+    """The batch-by-batch form of ``metric`` (see :class:`SummedMetric`), or None when it has
+    none and needs the whole set at once."""
+    inner = metric.metric if isinstance(metric, _FloatMetric) else metric
+    if inner is accuracy:
+        return AccuracySums()
+    if inner is negative_mse:
+        return _SquaredErrorSums()
+    if isinstance(inner, SummedMetric):  # has batch_sums and from_sums
+        return inner
+    return None
