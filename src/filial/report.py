@@ -535,7 +535,7 @@ def _baseline_head(name: str, record: Mapping[str, Any]) -> str:
     smoothing = (
         f"label smoothing {record.get('label_smoothing')}, " if name == "label-smoothing" else ""
     )
-    at = f"kept after epoch {kept + 1}" if is_int(kept) else "no epoch kept"
+    at = f"kept after epoch {int(kept) + 1}" if kept is not None else "no epoch kept"
     return f"{name} baseline ({smoothing}{epochs} epochs on the labels, held-out {scored}, {at})"
 
 
