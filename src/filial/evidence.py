@@ -10,7 +10,8 @@ another with its percentile bootstrap interval (:func:`filial.stopping.bootstrap
 Tibshirani 1993), plain and cross-fitted, and a :func:`status`: ``established`` when the interval
 lies above 0, ``worse`` when it lies below, ``inconclusive`` when it holds 0.
 :func:`across_seeds` does the same for the mean over seeds that share one held-out set: each
-resample draws the same held-out samples for every seed.
+resample draws seeds and held-out samples (the same samples for every seed drawn), so its
+interval holds the seed-to-seed spread too.
 
 >>> kept = Arm("kept", np.array([1.0, 1, 1, 0]), None)
 >>> first = Arm("generation 0", np.array([1.0, 0, 1, 0]), None)
@@ -27,7 +28,7 @@ from typing import Any
 
 import numpy as np
 
-from .stopping import bootstrap_mean
+from .stopping import Interval, bootstrap_crossed, bootstrap_mean
 
 RESAMPLES = 2000
 LEVEL = 0.95
@@ -47,8 +48,16 @@ class Arm:
 
 def interval(differences: np.ndarray, resamples: int = RESAMPLES) -> dict[str, Any]:
     """The mean of per-sample ``differences`` and its paired bootstrap interval, as plain
-    data (what ``filial report --json`` prints)."""
-    found = bootstrap_mean(differences, resamples=resamples, level=LEVEL, seed=0)
+    data (what ``filial report --json`` prints). A ``(seeds, samples)`` table gets the
+    interval of :func:`~filial.stopping.bootstrap_crossed` (seeds and samples resampled)."""
+    if np.ndim(differences) == 2:
+        found = bootstrap_crossed(differences, resamples=resamples, level=LEVEL, seed=0)
+    else:
+        found = bootstrap_mean(differences, resamples=resamples, level=LEVEL, seed=0)
+    return _plain(found)
+
+
+def _plain(found: Interval) -> dict[str, Any]:
     return {
         "observed": found.observed,
         "low": found.low,
@@ -89,36 +98,32 @@ def compare(kept: Arm, other: Arm, resamples: int = RESAMPLES) -> dict[str, Any]
 
 def across_seeds(pairs: Sequence[tuple[Arm, Arm]], resamples: int = RESAMPLES) -> dict[str, Any]:
     """The mean over seeds of the gain of each pair's first arm over its second (one pair per
-    seed, all over the same held-out samples), its interval (one draw of samples for every
-    seed) and the seeds' own gains."""
-    kept = [k for k, _ in pairs]
-    other = [o for _, o in pairs]
+    seed, all over the same held-out samples), its interval (seeds and held-out samples
+    resampled, :func:`~filial.stopping.bootstrap_crossed`) and the seeds' own gains."""
 
-    def mean_difference(attribute: str) -> np.ndarray | None:
+    def table(attribute: str) -> np.ndarray | None:
         rows = [(getattr(k, attribute), getattr(o, attribute)) for k, o in pairs]
         if any(a is None or b is None for a, b in rows):
             return None
-        return np.mean([a - b for a, b in rows], axis=0)
+        return np.stack([a - b for a, b in rows])
 
-    plain = interval(mean_difference("plain"), resamples)  # type: ignore[arg-type]
-    plain["per_seed"] = [float((k.plain - o.plain).mean()) for k, o in pairs]
-    fitted_mean = mean_difference("fitted")
+    plain_table = table("plain")
+    assert plain_table is not None  # every arm has plain scores
+    plain = interval(plain_table, resamples)
+    plain["per_seed"] = plain_table.mean(axis=1).tolist()
+    fitted_table = table("fitted")
     fitted = None
-    if fitted_mean is not None:
-        fitted = interval(fitted_mean, resamples)
-        fitted["per_seed"] = [float((k.fitted - o.fitted).mean()) for k, o in pairs]  # type: ignore[operator]
-    tests = [
-        k.test - o.test
-        for k, o in zip(kept, other, strict=True)
-        if k.test is not None and o.test is not None
-    ]
+    if fitted_table is not None:
+        fitted = interval(fitted_table, resamples)
+        fitted["per_seed"] = fitted_table.mean(axis=1).tolist()
+    tests = [k.test - o.test for k, o in pairs if k.test is not None and o.test is not None]
     return {
-        "against": other[0].name,
+        "against": pairs[0][1].name,
         "plain": plain,
         "cross_fitted": fitted,
         "test": float(np.mean(tests)) if len(tests) == len(pairs) else None,
         "status": status(fitted or plain),
-        "samples": len(kept[0].plain),
+        "samples": plain_table.shape[1],
         "seeds": len(pairs),
     }
 

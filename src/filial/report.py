@@ -640,8 +640,9 @@ def _across_lines(summary: dict[str, Any]) -> list[str]:
     across = summary.get("across") or {}
     if across.get("comparisons"):
         out.append(
-            f"gains of the kept generations, mean over {across['seeds']} seeds (one bootstrap "
-            f"draw of the {across['samples']} held-out samples for every seed)"
+            f"gains of the kept generations, mean over {across['seeds']} seeds (bootstrap "
+            f"intervals that draw seeds and the {across['samples']} held-out samples, the "
+            "same for every seed drawn)"
         )
         out.extend(_gain_table(across["comparisons"], across=True))
         if across["verdict"].get("text"):
