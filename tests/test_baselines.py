@@ -351,6 +351,23 @@ def test_baseline_arguments_are_checked_before_anything_trains(tmp_path):
     ]
 
 
+@pytest.mark.skipif(not torch.cuda.is_available(), reason="needs a CUDA device")
+def test_early_stopping_on_the_gpu(tmp_path):
+    """fit_epochs(device="cuda"): the held-out passes run on the model's device, the kept
+    weights come back there, the checkpoint loads on the CPU (nothing assumes the CPU)."""
+    lineage = _lineage(tmp_path / "run")
+    cuda = lambda n: filial.fit_epochs(n, _optimizer, progress=False, device="cuda")  # noqa: E731
+    lineage.run(cuda(2))
+    found = lineage.baselines(["early-stopping", "label-smoothing", "matched"], cuda)
+    lineage.close()
+    assert found["early-stopping"]["epochs"][-1]["heldout"] == pytest.approx(
+        found["matched"]["heldout"]
+    )
+    state = load_checkpoint(tmp_path / "run" / found["early-stopping"]["checkpoint"])
+    assert all(not t.is_cuda for t in state.values())
+    summarize(tmp_path / "run")
+
+
 # -- recipes ------------------------------------------------------------------------------
 
 

@@ -370,6 +370,8 @@ def train_baseline(
     fit = make_fit(epochs)
     if keeper is not None:
         fit = _epoch_fit(fit, keeper, spec.name)
+    elif isinstance(fit, EpochFit):
+        fit = fit.with_epoch_end(None, title=f"baseline {spec.name}")
     fitted = fit(gen)
     model = fitted if fitted is not None else gen.model
     if keeper is not None:

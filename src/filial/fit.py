@@ -62,9 +62,9 @@ class EpochFit:
         self.epoch_end: EpochEnd | None = None
         self.title: str | None = None
 
-    def with_epoch_end(self, epoch_end: EpochEnd, title: str | None = None) -> EpochFit:
-        """The same fit, calling ``epoch_end(gen, model, epoch)`` after every epoch and logging
-        the figures it returns with that epoch (the early-stopped baselines of
+    def with_epoch_end(self, epoch_end: EpochEnd | None, title: str | None = None) -> EpochFit:
+        """The same fit, calling ``epoch_end(gen, model, epoch)`` (if given) after every epoch
+        and logging the figures it returns with that epoch (the early-stopped baselines of
         :mod:`filial.baselines` score held-out data there). ``title`` names the progress bar.
         This fit itself is left as it is."""
         fit = EpochFit(self.epochs, self.optimizer, self.scheduler, self.progress, self.device)
