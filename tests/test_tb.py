@@ -21,7 +21,7 @@ from torch.utils.data import DataLoader
 
 import filial
 from filial import cli
-from filial.tb import ALONE, ARMS, WITH, SeedView, compare, write_arms
+from filial.tb import ALONE, ARMS, WITH, SeedView, baseline_metric, compare, write_arms
 
 
 def _accumulator(folder) -> EventAccumulator:
@@ -185,7 +185,19 @@ def test_one_lineage_writes_arms_detail_and_one_hparams_row(tiny_run):
     assert "loss: temperature" in sorted(hparams)[:5]
     assert "_hparams_/experiment" not in accumulator.PluginTagToContent("hparams")
     tags = accumulator.Tags()["scalars"]
-    assert "held-out, kept generation" in tags and "held-out, baseline matched" in tags
+    assert "held-out, kept generation" in tags
+    assert {"other arms, held-out of baseline matched", baseline_metric("early-stopping")} <= set(
+        tags
+    )
+    # the table shows the first five metrics by name: the kept generation's figures, then
+    # the baselines' (three baselines would otherwise hide the kept generation)
+    assert sorted(tags)[:5] == [
+        "held-out gain, kept over generation 0",
+        "held-out, generation 0",
+        "held-out, kept generation",
+        "kept generation",
+        "other arms, held-out of baseline early-stopping",
+    ]
     assert not any(t.startswith("hparams/") for t in tags)
     kept = state["decision"]["best"]
     assert _scalars(tb / "hparams", "kept generation")[-1] == (2, kept)
