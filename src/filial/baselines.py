@@ -272,17 +272,23 @@ def _stored(run: RunDirectory, spec: BaselineSpec, epochs: int) -> tuple[int, An
     """(where, record) of a finished baseline with these settings: 1 its own folder, 2 the
     matched baseline of the earlier layout, 0 none."""
     wanted = spec.settings(epochs)
-    path = run.baseline_record(spec.name)
-    if path.is_file():
-        stored = json.loads(path.read_text(encoding="utf-8"))
-        if all(stored.get(k) == v for k, v in wanted.items()):
-            return 1, stored
-    legacy = run.baseline_state_path
-    if spec.name == "matched" and legacy.is_file():
-        stored = json.loads(legacy.read_text(encoding="utf-8"))
-        if stored.get("epochs_matched") == epochs:
-            return 2, stored
+    stored = _readable(run.baseline_record(spec.name))
+    if stored is not None and all(stored.get(k) == v for k, v in wanted.items()):
+        return 1, stored
+    legacy = _readable(run.baseline_state_path) if spec.name == "matched" else None
+    if legacy is not None and legacy.get("epochs_matched") == epochs:
+        return 2, legacy
     return 0, None
+
+
+def _readable(path: Any) -> dict[str, Any] | None:
+    """A record file's JSON object, or None when it is absent or cannot be one of filial's
+    (a damaged record is a baseline that did not finish: it is trained again)."""
+    try:
+        stored = json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return None
+    return stored if isinstance(stored, dict) else None
 
 
 def _drop_legacy_matched(run: RunDirectory) -> None:

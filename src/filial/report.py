@@ -247,12 +247,12 @@ def _evidence(
     kept, fitted = found.kept(best)
     others = [found.first()] + [found.baseline(n, r) for n, r in baselines.items()]
     pairs = [(kept, other) for other in others if other is not None]
+    arms = {other.name: other for _, other in pairs}
     if fitted is not None:
         fitted["baselines"] = {
             o.name: o.detail["cross_fitted"] for _, o in pairs if "cross_fitted" in o.detail
         }
-    matched = found.baseline("matched", baselines["matched"]) if "matched" in baselines else None
-    first = found.first()
+    matched, first = arms.get("matched"), arms.get("generation 0")
     return {
         "comparisons": [compare(k, o) for k, o in pairs],
         "cross_fitted": fitted,
@@ -442,6 +442,11 @@ def _verdict(
         text = (
             f"{subject} did not beat {opponent}: {which} did better by "
             f"{-gain['observed']:.4f} ({figures}), established {on}"
+        )
+    elif gain["observed"] < 0:
+        text = (
+            f"not established that {subject} beat {opponent}, nor that they did worse: "
+            f"{which} did better by {-gain['observed']:.4f} ({figures}): inconclusive {on}"
         )
     else:
         text = (
