@@ -37,6 +37,9 @@ Figures and goals:
   row at 1,281,167 / at 100,000: goal <= 1.2 (``--large``). ``--before CHECKOUT`` runs the same
   measurements against another checkout's ``src`` (the code before a change) and puts its
   figures beside these.
+* early-stopping baseline: the early-stopped baseline (held-out scored after every epoch, the
+  best epoch's weights kept) / the matched baseline (the same training, judged at its last
+  epoch), digits MLP, 300 held-out samples against 1,000 training samples. Goal <= 1.15.
 """
 
 from __future__ import annotations
@@ -357,6 +360,42 @@ def lineage_overhead(epochs: int, work: Path) -> dict[str, Any]:
     }
 
 
+def early_stopping_cost(epochs: int, repeats: int, work: Path) -> dict[str, Any]:
+    """The early-stopped baseline / the matched baseline of one finished lineage (both train
+    for the lineage's epochs; the first also scores the held-out set after every epoch)."""
+    room = mail_room(noise=0.3, seed=0)
+    train, heldout, _ = room.loaders(batch_size=64, seed=0)
+
+    def make_fit(count: int) -> filial.fit.EpochFit:
+        return filial.fit_epochs(
+            count, lambda p: torch.optim.SGD(p, lr=0.05, momentum=0.9), progress=False
+        )
+
+    run_dir = work / "baselines"
+    lineage = filial.Lineage(
+        MLP((256, 256)),
+        train,
+        heldout,
+        run_dir=run_dir,
+        max_generations=1,
+        patience=5,
+        progress=False,
+        tensorboard=False,
+    )
+    lineage.run(make_fit(epochs))
+
+    def side(name: str) -> Callable[[], Any]:
+        def train_again() -> Any:
+            shutil.rmtree(run_dir / "baseline" / name, ignore_errors=True)
+            return lineage.baseline(name, make_fit)
+
+        return train_again
+
+    figure = alternate(side("early-stopping"), side("matched"), repeats)
+    lineage.close()
+    return {**figure, "epochs": 2 * epochs, "heldout": len(room.heldout), "train": len(room.train)}
+
+
 def compact_store(work: Path) -> dict[str, Any]:
     """Bytes per sample of full and top-k stores (float16 values) at C = 10, 100 and 1000."""
     result: dict[str, Any] = {}
@@ -639,6 +678,7 @@ def loop_figures(
         "store_gather": store_gather(rows, repeats, work),
         "lineage_overhead": lineage_overhead(lineage_epochs, work),
         "compact_store": compact_store(work),
+        "early_stopping": early_stopping_cost(2 if args.quick else 10, repeats, work),
     }
 
 
@@ -714,6 +754,13 @@ def loop_table(figures: dict[str, Any]) -> list[dict[str, Any]]:
             "bytes_per_sample",
             "<=",
             60,
+        ),
+        (
+            "early-stopped baseline / matched baseline, digits MLP",
+            figures["early_stopping"],
+            "ratio_median",
+            "<=",
+            1.15,
         ),
         (
             "lineage wall / (epochs + teacher passes)",

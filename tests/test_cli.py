@@ -73,7 +73,7 @@ def test_run_report_and_tensorboard_end_to_end(small_recipe, tmp_path, capsys):
     for seed in (0, 1):
         state = json.loads((run_dir / f"seed{seed}" / "lineage.json").read_text())
         assert [r["generation"] for r in state["records"]] == [0, 1, 2]
-        assert (run_dir / f"seed{seed}" / "baseline" / "baseline.json").is_file()
+        assert (run_dir / f"seed{seed}" / "baseline" / "matched" / "baseline.json").is_file()
 
     assert cli.main(["report", str(run_dir), "--json"]) == 0
     report = json.loads(capsys.readouterr().out)

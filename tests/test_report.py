@@ -63,9 +63,39 @@ def test_general_metrics_take_the_resampling_loop():
 
 
 def test_stop_reasons_in_words():
+    """The stop line says what was observed; over-regularisation only where the records show
+    its signature (training fit against the labels falling while held-out falls)."""
     settings = {"min_gain": 0.0, "patience": 2, "max_generations": 4}
     words = reason_in_words({"stop": True, "reason": "no-gain", "detail": {}}, settings)
-    assert words.startswith("no-gain:") and "over-regularise" in words
+    assert words.startswith("no-gain:") and "over-regularis" not in words
+    assert "no generation beat the best held-out metric by more than min_gain=0.0" in words
+    decision = {
+        "stop": True,
+        "reason": "no-gain",
+        "detail": {"last_gain": 1, "patience": 2, "min_gain": 0.0},
+    }
+
+    def records(train, heldout):
+        return [
+            {"generation": g, "train": t, "heldout": h}
+            for g, (t, h) in enumerate(zip(train, heldout, strict=True))
+        ]
+
+    flat = reason_in_words(
+        decision, settings, records([0.9, 0.8, 0.85, 0.7], [0.8, 0.9, 0.8, 0.85])
+    )
+    assert flat == (
+        "no-gain: no generation beat generation 1 by more than min_gain=0.0 for patience=2 "
+        "generations"
+    )
+    signature = reason_in_words(
+        decision, settings, records([0.9, 0.8, 0.75, 0.7], [0.8, 0.9, 0.88, 0.85])
+    )
+    assert signature.startswith(flat) and "the records show over-regularisation" in signature
+    assert (
+        "fell at every generation (0.8000 to 0.7000) while held-out fell (0.9000 to 0.8500)"
+        in signature
+    )
     collapse = {"stop": True, "reason": "collapse", "detail": {"why": "99% in one class"}}
     assert "99% in one class" in reason_in_words(collapse, settings)
     assert "max_generations=4" in reason_in_words(
@@ -102,10 +132,10 @@ def test_report_says_when_the_matched_baseline_diverged(loaders, tmp_path):
     )
     assert (
         base["epochs_matched"] == 2
-        and not (tmp_path / "run" / "baseline" / "gen0" / "targets.npy").exists()
+        and not (tmp_path / "run" / "baseline" / "matched" / "gen0" / "targets.npy").exists()
     )
-    path = tmp_path / "run" / "baseline" / "baseline.json"
+    path = tmp_path / "run" / "baseline" / "matched" / "baseline.json"
     path.write_text(json.dumps({**base, "heldout": None, "diverged": True}))
-    assert "matched baseline (2 epochs on the labels): diverged" in format_report(
+    assert "matched baseline (2 epochs on the labels, the last kept): diverged" in format_report(
         summarize(tmp_path / "run")
     )

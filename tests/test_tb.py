@@ -21,7 +21,7 @@ from torch.utils.data import DataLoader
 
 import filial
 from filial import cli
-from filial.tb import ALONE, ARMS, WITH, SeedView, compare, write_arms
+from filial.tb import ALONE, ARMS, WITH, SeedView, baseline_metric, compare, write_arms
 
 
 def _accumulator(folder) -> EventAccumulator:
@@ -109,7 +109,8 @@ def test_write_arms_layout_and_a_rewrite_replaces_the_runs(tmp_path):
 
 @pytest.fixture(scope="module")
 def tiny_run(tmp_path_factory):
-    """One lineage of three generations and its matched baseline (the conftest blobs)."""
+    """One lineage of three generations, its early-stopped and matched baselines (the conftest
+    blobs)."""
     train = DataLoader(
         blobs(96, seed=1), batch_size=16, shuffle=True, generator=torch.Generator().manual_seed(0)
     )
@@ -127,8 +128,9 @@ def tiny_run(tmp_path_factory):
         seed=3,
     )
     lineage.run(filial.fit_epochs(3, lambda params: torch.optim.SGD(params, lr=0.1)))
-    lineage.matched_baseline(
-        lambda n: filial.fit_epochs(n, lambda params: torch.optim.SGD(params, lr=0.1))
+    lineage.baselines(
+        ["early-stopping", "matched"],
+        lambda n: filial.fit_epochs(n, lambda params: torch.optim.SGD(params, lr=0.1)),
     )
     lineage.close()
     return run_dir
@@ -141,7 +143,7 @@ def test_one_lineage_writes_arms_detail_and_one_hparams_row(tiny_run):
     generations = [r["generation"] for r in records]
     assert generations == [0, 1, 2]
     assert sorted(p.name for p in tb.iterdir()) == sorted(
-        [ARMS, "gen0", "gen1", "gen2", "baseline matched", "hparams"]
+        [ARMS, "gen0", "gen1", "gen2", "baseline early-stopping", "baseline matched", "hparams"]
     )
     # each generation: its epoch curve, and its figures as one point at its own step
     for r in records:
@@ -149,7 +151,7 @@ def test_one_lineage_writes_arms_detail_and_one_hparams_row(tiny_run):
         assert [s for s, _ in _scalars(run, "epoch/loss")] == [0, 1, 2]
         for tag, key in [("generation/held-out", "heldout"), ("generation/test", "test")]:
             assert _scalars(run, tag) == [(r["generation"], pytest.approx(r[key]))]
-    base = json.loads((tiny_run / "baseline" / "baseline.json").read_text())
+    base = json.loads((tiny_run / "baseline" / "matched" / "baseline.json").read_text())
     # the baseline: a level at every generation, per lineage and in the arms view
     level = _scalars(tb / "baseline matched", "generation/held-out")
     assert level == [(g, pytest.approx(base["heldout"])) for g in generations]
@@ -158,6 +160,15 @@ def test_one_lineage_writes_arms_detail_and_one_hparams_row(tiny_run):
     )
     arm = _scalars(tb / ARMS / "baseline matched", "held-out/every arm")
     assert arm == [(g, pytest.approx(base["heldout"])) for g in generations]
+    # the early-stopped baseline: its per-epoch held-out curve in its own run, its level
+    early = json.loads((tiny_run / "baseline" / "early-stopping" / "baseline.json").read_text())
+    curve = [(e["epoch"], pytest.approx(e["heldout"])) for e in early["epochs"]]
+    assert len(curve) == early["epochs_matched"]  # held-out after every epoch
+    assert _scalars(tb / "baseline early-stopping", "epoch/held-out") == curve
+    level = _scalars(tb / ARMS / "baseline early-stopping", "held-out/every arm")
+    assert level == [(g, pytest.approx(early["heldout"])) for g in generations]
+    gain = _scalars(tb / ARMS / WITH, "answer/gain vs baseline early-stopping")
+    assert [s for s, _ in gain] == generations
     curve = _scalars(tb / ARMS / WITH, "held-out/every arm")
     assert curve == [(r["generation"], pytest.approx(r["heldout"])) for r in records]
     alone = _scalars(tb / ARMS / ALONE, "test/every arm")
@@ -174,7 +185,19 @@ def test_one_lineage_writes_arms_detail_and_one_hparams_row(tiny_run):
     assert "loss: temperature" in sorted(hparams)[:5]
     assert "_hparams_/experiment" not in accumulator.PluginTagToContent("hparams")
     tags = accumulator.Tags()["scalars"]
-    assert "held-out, kept generation" in tags and "held-out, baseline matched" in tags
+    assert "held-out, kept generation" in tags
+    assert {"other arms, held-out of baseline matched", baseline_metric("early-stopping")} <= set(
+        tags
+    )
+    # the table shows the first five metrics by name: the kept generation's figures, then
+    # the baselines' (three baselines would otherwise hide the kept generation)
+    assert sorted(tags)[:5] == [
+        "held-out gain, kept over generation 0",
+        "held-out, generation 0",
+        "held-out, kept generation",
+        "kept generation",
+        "other arms, held-out of baseline early-stopping",
+    ]
     assert not any(t.startswith("hparams/") for t in tags)
     kept = state["decision"]["best"]
     assert _scalars(tb / "hparams", "kept generation")[-1] == (2, kept)

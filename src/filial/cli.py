@@ -46,6 +46,7 @@ from . import __version__, distributed
 from . import recipe as recipes
 from ._faults import fault_point
 from ._io import atomic_write
+from .baselines import BaselineSpec, baseline_specs
 from .data import check_loader, sharded_loader
 from .distributed import RankZeroFailed
 from .errors import InputError, LockedError, Problems
@@ -129,7 +130,23 @@ def plan(recipe_path: str, overrides: Sequence[str], run_dir: str | None) -> Pla
         found = "; ".join(str(p) for p in problems.found)
         raise recipes.RecipeError(f"[generations]: {found}")
     recipes.training_device(recipe["training"])  # a wrong device is a recipe error, here
+    baseline_plan(recipe)
     return Plan(recipe, train, heldout, test, model_fn)
+
+
+def baseline_plan(recipe: recipes.Recipe) -> list[BaselineSpec]:
+    """The recipe's baselines, checked against its targets (a bad one names its key)."""
+    run, targets = recipe["run"], recipe["generations"]["targets"]
+    try:
+        return baseline_specs(
+            run["baseline"],
+            every=run["baseline_every"],
+            label_smoothing=run["label_smoothing"],
+            targets=targets,
+        )
+    except ValueError as exc:
+        text = str(exc).replace("label_smoothing", "run.label_smoothing", 1)
+        raise recipes.RecipeError(f"run.baseline = {run['baseline']!r}: {text}") from exc
 
 
 def generation_settings(recipe: recipes.Recipe, seed: int = 0) -> dict[str, Any]:
@@ -228,6 +245,7 @@ def _train(
         return fit_epochs(count, optimizer, scheduler, progress=on_terminal, device=device)
 
     fit = make_fit(training["epochs"])
+    specs = baseline_plan(p.recipe)
     views: list[SeedView] = []
     on_terminal = on_terminal and distributed.is_main()
     for lineage in lineages:
@@ -249,8 +267,16 @@ def _train(
             bar.set_postfix(heldout=f"{record['heldout'] or float('nan'):.4f}", refresh=True)
         bar.close()
         baselines: dict[str, Mapping[str, Any]] = {}
-        if p.recipe["run"]["baseline"] == "matched" and lineage.result.best is not None:
-            baselines["matched"] = lineage.matched_baseline(make_fit)
+        if specs and lineage.result.best is not None:
+            run_settings = p.recipe["run"]
+            baselines.update(
+                lineage.baselines(
+                    [spec.name for spec in specs],
+                    make_fit,
+                    every=run_settings["baseline_every"],
+                    label_smoothing=run_settings["label_smoothing"],
+                )
+            )
         if distributed.is_main():  # TensorBoard's arms view, from the seeds finished so far
             result = lineage.result
             views.append(SeedView(seed, result.records, result.best, baselines))
@@ -327,6 +353,8 @@ def _open(
             if args.fresh and not new_run:
                 _start_over(run, seeds)
                 _save_recipe(p.recipe, run)
+            elif not new_run and _baselines_changed(run, p.recipe):
+                _save_recipe(p.recipe, run)  # the saved recipe says which baselines the run has
 
         distributed.on_rank_zero(finish_opening, f"saving the recipe in {run.root}")
     except BaseException:
@@ -348,6 +376,27 @@ def _say(message: str) -> None:
     if not distributed.is_main():
         message = message.replace("filial: ", f"filial (rank {distributed.rank()}): ", 1)
     print(message, file=sys.stderr)
+
+
+def _baselines_changed(run: RecipeRunDirectory, recipe: recipes.Recipe) -> bool:
+    """Whether the run's saved recipe asks for other baselines (or other baseline settings)
+    than this one; says which. Those baselines train (again), the rest of the run is kept."""
+    saved = recipes.Recipe(tomllib.loads(run.recipe_path.read_text(encoding="utf-8")))
+    old, new = saved.baselines(), recipe.baselines()
+    changed = [
+        f"run.{key}: {old[key]!r} in the run, {new[key]!r} now"
+        for key in recipes.BASELINE_KEYS
+        if old[key] != new[key]
+    ]
+    if changed:
+        print(
+            "filial: other baseline settings than the run's ("
+            + "; ".join(changed)
+            + "): a baseline whose settings changed trains again, finished lineages and "
+            "baselines are kept",
+            file=sys.stderr,
+        )
+    return bool(changed)
 
 
 def _remove_all_but_the_lock(directory: Path) -> None:

@@ -7,7 +7,7 @@
 
 from __future__ import annotations
 
-from collections.abc import Callable, Iterable
+from collections.abc import Callable, Iterable, Mapping
 from typing import TYPE_CHECKING, Any
 
 import torch
@@ -23,6 +23,9 @@ if TYPE_CHECKING:
 
 OptimizerFactory = Callable[[Iterable[nn.Parameter]], torch.optim.Optimizer]
 SchedulerFactory = Callable[[torch.optim.Optimizer], Any]
+# Called on every rank after each epoch's optimizer and scheduler steps with the generation, the
+# trained module (not its DDP wrapper) and the epoch; returns more figures for that epoch's log.
+EpochEnd = Callable[["Generation", nn.Module, int], Mapping[str, float]]
 
 
 class EpochFit:
@@ -56,6 +59,17 @@ class EpochFit:
         self.scheduler = scheduler
         self.progress = progress
         self.device = None if device is None else torch.device(device)
+        self.epoch_end: EpochEnd | None = None
+        self.title: str | None = None
+
+    def with_epoch_end(self, epoch_end: EpochEnd | None, title: str | None = None) -> EpochFit:
+        """The same fit, calling ``epoch_end(gen, model, epoch)`` (if given) after every epoch
+        and logging the figures it returns with that epoch (the early-stopped baselines of
+        :mod:`filial.baselines` score held-out data there). ``title`` names the progress bar.
+        This fit itself is left as it is."""
+        fit = EpochFit(self.epochs, self.optimizer, self.scheduler, self.progress, self.device)
+        fit.epoch_end, fit.title = epoch_end, title
+        return fit
 
     def __call__(self, gen: Generation) -> nn.Module:
         model = gen.model if self.device is None else gen.model.to(self.device)
@@ -74,7 +88,7 @@ class EpochFit:
             disable = True
         bar = tqdm(
             range(self.epochs),
-            desc=f"generation {gen.index}",
+            desc=self.title or f"generation {gen.index}",
             unit="epoch",
             leave=False,
             disable=disable,
@@ -110,7 +124,8 @@ class EpochFit:
             mean = sums[0] / max(sums[2], 1)
             running = sums[1] / max(sums[3], 1)
             name = "running_accuracy" if classify else "running_neg_mse"
-            gen.log_epoch(epoch, loss=mean, **{name: running})
+            extra = self.epoch_end(gen, model, epoch) if self.epoch_end is not None else {}
+            gen.log_epoch(epoch, loss=mean, **{name: running}, **extra)
             bar.set_postfix(loss=f"{mean:.4f}", refresh=False)
         bar.close()
         return model

@@ -30,13 +30,18 @@ from torch.utils.data import DataLoader, DistributedSampler
 
 from . import distributed
 from ._io import atomic_write
-from .baselines import FitFactory, train_matched_baseline
+from .baselines import (
+    DEFAULT_LABEL_SMOOTHING,
+    FitFactory,
+    baseline_specs,
+    train_baseline,
+)
 from .checkpoint import load_model
 from .data import check_loader
 from .errors import InputError, Problems
 from .evaluation import HeldoutHistory
 from .generation import Generation, GenerationInputs, Measured
-from .metrics import Metric, as_float_metric, default_metric, metric_name
+from .metrics import Metric, as_float_metric, default_metric, metric_name, sample_scores
 from .models import ModelChecks
 from .observers import ConsoleProgress, Observer, Observers, TensorBoardRuns
 from .probe import Probe, check_augmentation, probe, replay_for, say_once, warn_changing_heldout
@@ -187,6 +192,8 @@ class Lineage:
         )
         self.settings: dict[str, Any] = saved_settings(settings, facts)
         metric_fn = metric or default_metric(torch.as_tensor(train.labels))
+        # Per-sample scores of a built-in metric: the report's bootstrap and cross-fitting.
+        self._sample_scores = sample_scores(metric_fn) if metric is None else None
         spec = StoreSpec(settings.store_dtype, settings.views, settings.top_k, train.fingerprint)
         self._inputs = GenerationInputs(
             run=self._run,
@@ -308,21 +315,86 @@ class Lineage:
             model_fn=self.model_fn,
         )
 
+    def baselines(
+        self,
+        names: str | Sequence[str],
+        make_fit: FitFactory,
+        *,
+        every: int = 1,
+        label_smoothing: float = DEFAULT_LABEL_SMOOTHING,
+    ) -> dict[str, BaselineRecord]:
+        """Train the baselines ``names`` of a finished lineage; their records by name.
+
+        Each is one model trained on the labels for as many epochs as the whole lineage used,
+        from generation 0's seed (so the comparison is paired): ``"matched"`` (its last
+        epoch), ``"early-stopping"`` (held-out after every ``every``-th epoch and after the
+        last, the best epoch kept, ties to the earlier) and ``"label-smoothing"`` (the same,
+        trained with ``cross_entropy(label_smoothing=label_smoothing)``, ``targets='ce'``
+        only); ``"none"`` asks for none. ``make_fit(epochs)`` returns the fit function, e.g.
+        ``lambda n: filial.fit_epochs(n, optimizer)``; the early-stopped baselines need a
+        :func:`filial.fit_epochs` there. Records go to ``RUN/baseline/NAME/baseline.json``; a
+        finished baseline with the same settings is reused, one whose settings changed is
+        trained again (alone). Every setting is checked before anything trains.
+
+        Example::
+
+            lineage.run(filial.fit_epochs(30, optimizer))
+            found = lineage.baselines(
+                ["early-stopping", "label-smoothing", "matched"],
+                lambda n: filial.fit_epochs(n, optimizer),
+            )
+            found["early-stopping"]["heldout"], found["early-stopping"]["best_epoch"]
+        """
+        specs = baseline_specs(
+            names, every=every, label_smoothing=label_smoothing, targets=self.settings["targets"]
+        )
+        if not self.done:
+            raise RuntimeError("baselines need a finished lineage; run it first")
+        if not callable(make_fit):
+            raise TypeError(
+                "make_fit should be a function of the epoch count returning a fit function, "
+                f"e.g. lambda n: filial.fit_epochs(n, optimizer), but got {make_fit!r}"
+            )
+        found: dict[str, BaselineRecord] = {}
+        for spec in specs:
+            self._state.check_current(f"training the {spec.name} baseline")
+            found[spec.name] = train_baseline(
+                spec,
+                self._inputs,
+                self.model_fn,
+                self._state.records,
+                make_fit,
+                self._observers,
+                self._sample_scores,
+            )
+        return found
+
+    def baseline(
+        self,
+        name: str,
+        make_fit: FitFactory,
+        *,
+        every: int = 1,
+        label_smoothing: float = DEFAULT_LABEL_SMOOTHING,
+    ) -> BaselineRecord:
+        """One baseline of :meth:`baselines` (``"early-stopping"``, ``"label-smoothing"`` or
+        ``"matched"``); its record."""
+        if not isinstance(name, str) or name == "none":
+            raise ValueError(
+                f"baseline() trains one baseline: 'early-stopping', 'label-smoothing' or "
+                f"'matched', but got {name!r}"
+            )
+        found = self.baselines([name], make_fit, every=every, label_smoothing=label_smoothing)
+        return found[name]
+
     def matched_baseline(self, make_fit: FitFactory) -> BaselineRecord:
-        """Train one model on the labels for as many epochs as the whole lineage used.
+        """Train one model on the labels for as many epochs as the whole lineage used, judged
+        at its last epoch: ``baseline("matched", make_fit)`` (see :meth:`baselines`).
 
         Generation 0 is the baseline "without generations"; this one tells the gain of
-        generations apart from the gain of more training. ``make_fit(epochs)`` returns a fit
-        function (e.g. ``lambda n: filial.fit_epochs(n, optimizer)``). The model starts from
-        generation 0's seed, so the comparison is paired. Its record goes to
-        ``RUN/baseline/baseline.json``; a finished baseline for the same epoch count is reused.
+        generations apart from the gain of more training.
         """
-        if not self.done:
-            raise RuntimeError("the matched baseline needs a finished lineage; run it first")
-        self._state.check_current("training the matched baseline")
-        return train_matched_baseline(
-            self._inputs, self.model_fn, self._state.records, make_fit, self._observers
-        )
+        return self.baseline("matched", make_fit)
 
     def _begin(self, index: int) -> Generation:
         """Hand out generation ``index``: its teacher's targets (or the teacher itself, online),

@@ -117,7 +117,13 @@ class StudentLoss:
     a mistake is named in words instead of surfacing as an index error deep in a kernel.
     """
 
-    def __init__(self, kind: str, temperature: float = 1.0, label_weight: float = 0.0) -> None:
+    def __init__(
+        self,
+        kind: str,
+        temperature: float = 1.0,
+        label_weight: float = 0.0,
+        label_smoothing: float = 0.0,
+    ) -> None:
         if kind not in LOSS_KINDS:
             raise ValueError(f"targets must be one of {LOSS_KINDS}, but got targets={kind!r}")
         if (
@@ -137,9 +143,26 @@ class StudentLoss:
             raise ValueError(
                 f"label_weight should be a finite number, but got label_weight={label_weight!r}"
             )
+        if (
+            not isinstance(label_smoothing, numbers.Real)
+            or isinstance(label_smoothing, bool)
+            or not 0.0 <= label_smoothing < 1.0
+        ):
+            raise ValueError(
+                "label_smoothing should be a number in [0, 1), but got "
+                f"label_smoothing={label_smoothing!r}"
+            )
+        if label_smoothing and kind != "ce":
+            raise ValueError(
+                f"label_smoothing={label_smoothing!r} smooths the targets of cross-entropy; "
+                f"it applies to kind='ce' only, but got kind={kind!r}"
+            )
         self.kind: str = kind
         self.temperature: float = float(temperature)
         self.label_weight: float = float(label_weight)
+        # PyTorch's cross_entropy(label_smoothing=eps): the one-hot target mixed with the
+        # uniform distribution (Szegedy et al. 2016). Only the label-smoothing baseline sets it.
+        self.label_smoothing: float = float(label_smoothing)
         self._checked: bool = False
 
     def check(self, outputs: torch.Tensor, labels: torch.Tensor) -> None:
@@ -186,6 +209,8 @@ class StudentLoss:
 
     def label_term(self, outputs: torch.Tensor, labels: torch.Tensor) -> torch.Tensor:
         if self.kind == "ce":
+            if self.label_smoothing:
+                return F.cross_entropy(outputs, labels, label_smoothing=self.label_smoothing)
             return F.cross_entropy(outputs, labels)
         if _is_integer(labels):
             return squared_error(outputs, F.one_hot(labels, outputs.shape[1]).to(outputs.dtype))

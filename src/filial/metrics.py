@@ -98,6 +98,34 @@ def default_metric(labels: torch.Tensor) -> Metric:
     return negative_mse if labels.is_floating_point() else accuracy
 
 
+def sample_scores(metric: Metric) -> Callable[[torch.Tensor, torch.Tensor], torch.Tensor] | None:
+    """Per-sample scores whose mean over the samples is ``metric`` (float64, one per row), for
+    the built-in metrics; None for any other metric (it may not be a mean over samples).
+
+    Accuracy scores a row 1 or 0; negative MSE scores it by minus the mean of its squared
+    errors (every row has the same width, so the mean of the rows is the metric). The report's
+    paired bootstrap and its cross-fitted estimate resample or split these.
+
+    >>> outputs, labels = torch.tensor([[0.1, 0.9], [0.8, 0.2]]), torch.tensor([1, 1])
+    >>> sample_scores(accuracy)(outputs, labels).tolist()
+    [1.0, 0.0]
+    """
+    if metric is accuracy:
+        return _hits
+    if metric is negative_mse:
+        return _negative_squared_errors
+    return None
+
+
+def _hits(outputs: torch.Tensor, labels: torch.Tensor) -> torch.Tensor:
+    return (outputs.argmax(dim=1) == labels).double()
+
+
+def _negative_squared_errors(outputs: torch.Tensor, labels: torch.Tensor) -> torch.Tensor:
+    errors = (outputs - labels.reshape(outputs.shape).to(outputs.dtype)).double().pow(2)
+    return -errors.reshape(len(outputs), -1).mean(dim=1)
+
+
 def metric_name(metric: Metric | None) -> str:
     if metric is None:
         return "default"

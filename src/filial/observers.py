@@ -23,7 +23,7 @@ from tqdm.auto import tqdm
 
 from .records import BaselineRecord, DecisionState, EpochEntry, GenerationRecord
 from .stopping import StopRule
-from .tb import TensorBoardLog
+from .tb import TensorBoardLog, baseline_name
 
 
 class Observer:
@@ -137,8 +137,11 @@ class ConsoleProgress(Observer):
         )
 
     def baseline_ended(self, record: BaselineRecord, records: Sequence[GenerationRecord]) -> None:
+        name = baseline_name(record)
+        kept = record.get("best_epoch")
+        at = f", kept after epoch {kept + 1}" if kept is not None else ""
         self.say(
-            f"matched baseline ({record['epochs_matched']} epochs on the labels): held-out "
+            f"{name} baseline ({record['epochs_matched']} epochs on the labels{at}): held-out "
             f"{figure(record['heldout'])}, {record['seconds']:.1f} s"
         )
 

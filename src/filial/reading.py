@@ -10,8 +10,9 @@ file                   reader
 =====================  =========================================================
 ``recipe.toml``        :func:`read_saved_recipe` (the marker line, ``[run]``, ``run.seeds``)
 ``lineage.json``       :func:`read_state` (format, settings, every record, the decision)
-``baseline.json``      :func:`read_baseline` (a record, plus ``epochs_matched``)
-``*.npy``              :func:`read_array` (``heldout_labels.npy``, ``genG/heldout.npy``)
+``baseline.json``      :func:`read_baseline` (a record, ``epochs_matched``, its own settings)
+``*.npy``              :func:`read_array` (``heldout_labels.npy``, ``genG/heldout.npy``,
+                       ``baseline/NAME/heldout_epochs.npy``)
 =====================  =========================================================
 
 >>> import json, tempfile, pathlib
@@ -35,6 +36,7 @@ from typing import Any
 
 import numpy as np
 
+from .baselines import BASELINES
 from .errors import InputError
 from .losses import LOSS_KINDS
 from .recipe import MARKER
@@ -104,6 +106,11 @@ def read_array(path: Path) -> np.ndarray:
 
 
 # -- fields --------------------------------------------------------------------------------------
+
+
+def is_int(value: Any) -> bool:
+    return isinstance(value, int) and not isinstance(value, bool)
+
 
 _KINDS: dict[str, tuple[str, Any]] = {
     "int": ("an integer", lambda v: isinstance(v, int) and not isinstance(v, bool)),
@@ -233,12 +240,37 @@ def _check_decision(path: Path, decision: dict[str, Any], records: list[Any]) ->
     fields.get("detail", "dict", "null", required=False)
 
 
-def read_baseline(path: Path) -> dict[str, Any]:
-    """``baseline/baseline.json``: the matched baseline's record and its epoch count."""
+def read_baseline(path: Path, name: str | None = None) -> dict[str, Any]:
+    """A baseline's ``baseline.json`` (``RUN/baseline/NAME/``, or the matched baseline of the
+    earlier layout, ``RUN/baseline/``): a record, its epoch count and its own settings.
+    ``name``: the folder's name, which the record must carry."""
     record = check_record(path, read_json(path), "", 0)
-    matched = _Checker(path, record).get("epochs_matched", "int")
+    fields = _Checker(path, record)
+    matched = fields.get("epochs_matched", "int")
     if matched < 1:
-        raise _Checker(path, record).fail("epochs_matched", "an integer >= 1", matched)
+        raise fields.fail("epochs_matched", "an integer >= 1", matched)
+    found = fields.get("name", "str", required=False)
+    if name is not None and found != name:
+        raise fields.fail("name", f"{name!r} (the name of its folder)", found)
+    if found is not None and found not in BASELINES:
+        raise fields.fail("name", " or ".join(repr(n) for n in BASELINES), found)
+    every = fields.get("every", "int", required=False, default=1)
+    if every < 1:
+        raise fields.fail("every", "an integer >= 1", every)
+    smoothing = fields.get("label_smoothing", "number", required=False, default=0.0)
+    if not 0 <= smoothing < 1:
+        raise fields.fail("label_smoothing", "a number in [0, 1)", smoothing)
+    best = fields.get("best_epoch", "int", "null", required=False)
+    if best is not None and not 0 <= best < matched:
+        raise fields.fail("best_epoch", f"an epoch 0..{matched - 1}", best)
+    evaluated = fields.get("evaluated", "list", required=False, default=[])
+    if not all(is_int(e) and 0 <= e < matched for e in evaluated):
+        raise fields.fail("evaluated", f"a list of epochs 0..{matched - 1}", evaluated)
+    scores = fields.get("heldout_epochs", "str", "null", required=False)
+    if scores is not None:
+        parts = PurePosixPath(scores).parts
+        if not parts or PurePosixPath(scores).is_absolute() or ".." in parts:
+            raise fields.fail("heldout_epochs", "a path inside the lineage folder", scores)
     return record
 
 

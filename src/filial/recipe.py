@@ -10,7 +10,7 @@ DataLoaders (or a dict with those keys); the model factory returns a fresh ``nn.
     [run]
     name = "digits-ce"
     seeds = [0, 1, 2]
-    baseline = "matched"          # also train one model on the labels for as many epochs
+    baseline = ["early-stopping", "matched"]   # models on the labels, as many epochs
 
     [data]
     factory = "filial.demo:mail_room_loaders"
@@ -52,6 +52,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, TypeVar
 
+from .baselines import DEFAULT_LABEL_SMOOTHING, baseline_names
 from .errors import InputError
 from .losses import LOSS_KINDS
 from .store import STORE_DTYPES
@@ -108,7 +109,7 @@ def _user_traceback(error: BaseException) -> str:
 
 @dataclass(frozen=True)
 class Field:
-    kind: str  # "int", "float", "str", "bool", "seeds", or "choice"
+    kind: str  # "int", "float", "str", "bool", "seeds", "choice" or "baselines"
     default: Any
     choices: tuple[str, ...] = ()
     minimum: float | None = None
@@ -133,7 +134,17 @@ _SCHEMA: dict[str, dict[str, Field]] = {
         "name": Field("str", "filial"),
         "run_dir": Field("str", ""),
         "seeds": Field("seeds", [0]),
-        "baseline": Field("choice", "none", ("none", "matched")),
+        "baseline": Field(
+            "baselines",
+            [],
+            help="none, or a list of early-stopping, label-smoothing, matched",
+        ),
+        "baseline_every": Field(
+            "int", 1, minimum=1, help="early-stopped baselines: held-out after every k epochs"
+        ),
+        "label_smoothing": Field(
+            "float", DEFAULT_LABEL_SMOOTHING, minimum=0.0, help="the label-smoothing baseline's"
+        ),
     },
     "training": {
         "epochs": Field("int", 30, minimum=1),
@@ -172,6 +183,7 @@ _SCHEMA: dict[str, dict[str, Field]] = {
     },
 }
 _FACTORY_SECTIONS = ("data", "model")
+BASELINE_KEYS = ("baseline", "baseline_every", "label_smoothing")
 _NAME = re.compile(r"[A-Za-z0-9][A-Za-z0-9._-]*")
 SECTIONS = ("run", "data", "model", "training", "generations")
 
@@ -195,6 +207,11 @@ def _check_kind(name: str, field: Field, value: Any) -> Any:
     if field.kind == "choice" and value not in field.choices:
         options = ", ".join(repr(c) for c in field.choices)
         raise RecipeError(f"{name} should be one of {options}, but got {_describe(value)}")
+    if field.kind == "baselines":
+        try:  # "none", one name or a list of names; kept as the list, in the training order
+            return baseline_names(value, name)
+        except ValueError as exc:
+            raise RecipeError(str(exc)) from None
     if field.kind == "seeds":
         _check_seeds(name, value)
     return value
@@ -482,7 +499,20 @@ class Recipe:
         _renamed(values, "saved")
         values["run"].pop("run_dir", None)
         values["training"].pop("device", None)  # where it trains; a run may move on resume
+        # Each baseline's record holds its own settings: a changed one trains that baseline
+        # again, the others are kept, and the lineages are not touched.
+        for key in BASELINE_KEYS:
+            values["run"].pop(key, None)
         return values
+
+    def baselines(self) -> dict[str, Any]:
+        """The baseline settings (``run.baseline`` as a list of names), read alike from a
+        resolved recipe and from one saved by earlier versions (``baseline = "matched"``)."""
+        run = self.values.get("run", {})
+        defaults = {key: _SCHEMA["run"][key].default for key in BASELINE_KEYS}
+        found = {**defaults, **{k: run[k] for k in BASELINE_KEYS if k in run}}
+        found["baseline"] = baseline_names(found["baseline"], "run.baseline")
+        return found
 
     def to_toml(self) -> str:
         """The recipe as TOML, with the marker line that makes its folder a filial run."""

@@ -25,6 +25,7 @@ class EpochEntry(TypedDict, total=False):
     loss: float
     running_accuracy: float
     running_neg_mse: float
+    heldout: float  # early-stopped baselines: the held-out metric after this epoch
 
 
 class StopDetail(TypedDict, total=False):
@@ -75,10 +76,17 @@ class DecisionState(TypedDict):
 
 
 class BaselineRecord(GenerationRecord):
-    """A baseline trained on the labels (``RUN/baseline/baseline.json``)."""
+    """A baseline trained on the labels (``RUN/baseline/NAME/baseline.json``; the matched
+    baseline of runs made before named baselines: ``RUN/baseline/baseline.json``)."""
 
-    kind: str  # "matched-baseline"
-    epochs_matched: int
+    kind: str  # "matched-baseline", "early-stopping-baseline", "label-smoothing-baseline"
+    epochs_matched: int  # the epochs the whole lineage trained, and so this baseline
+    name: NotRequired[str]  # "matched", "early-stopping", "label-smoothing" (absent: matched)
+    every: NotRequired[int]  # early-stopped: held-out after every k-th epoch and the last
+    label_smoothing: NotRequired[float]  # label-smoothing: PyTorch's epsilon
+    best_epoch: NotRequired[int | None]  # early-stopped: the epoch kept (None: all diverged)
+    evaluated: NotRequired[list[int]]  # early-stopped: the epochs scored on held-out data
+    heldout_epochs: NotRequired[str | None]  # their per-sample held-out scores (built-in metric)
 
 
 def is_number(value: Any) -> TypeGuard[float]:

@@ -18,7 +18,10 @@ from typing import Any
 import numpy as np
 import torch
 
-from .metrics import default_metric
+from .baselines import BASELINES, EARLY_STOPPED
+from .crossfit import cross_fit, halves
+from .evidence import Arm, across_seeds, closest, compare
+from .metrics import default_metric, sample_scores
 from .reading import (
     RunFileError,
     check_directory,
@@ -28,76 +31,252 @@ from .reading import (
     read_state,
 )
 from .records import is_number
-from .rundir import RECIPE_FILE, STATE_FILE, RecipeRunDirectory, RunDirectory
-from .stopping import paired_bootstrap
+from .rundir import HELDOUT_FILE, RECIPE_FILE, STATE_FILE, RecipeRunDirectory, RunDirectory
 
 _REASONS = {
     "no-gain": (
-        "no generation beat the best held-out metric by more than min_gain={min_gain} for "
-        "patience={patience} generations: further generations over-regularise"
+        "no generation beat generation {last_gain} by more than min_gain={min_gain} for "
+        "patience={patience} generations"
     ),
-    "collapse": "the predictions degenerated ({why}): repeated distillation shrinks them to a "
-    "constant, so the lineage stopped",
+    "collapse": "the predictions degenerated ({why}), so the lineage stopped",
     "diverged": "generation {generation}'s loss or outputs were not finite; it is never kept",
     "max-generations": "the last allowed generation (max_generations={max_generations}) finished",
 }
+# Records written before the stop detail named the last gain.
+_NO_GAIN_BEFORE = (
+    "no generation beat the best held-out metric by more than min_gain={min_gain} for "
+    "patience={patience} generations"
+)
 
 
-def reason_in_words(decision: dict[str, Any] | None, settings: dict[str, Any]) -> str:
-    """The stop reason as a sentence (or 'still running')."""
+def reason_in_words(
+    decision: dict[str, Any] | None,
+    settings: dict[str, Any],
+    records: Sequence[Mapping[str, Any]] = (),
+) -> str:
+    """The stop reason as a sentence (or 'still running'): what the records show, and for
+    ``no-gain`` the over-regularisation signature only when ``records`` show it."""
     if not decision or not decision.get("stop"):
         return "not finished yet (resume with the same command)"
     reason = decision["reason"]
-    values = {**settings, **(decision.get("detail") or {})}
+    detail = decision.get("detail") or {}
+    values = {**settings, **detail}
+    template = _REASONS.get(reason, "")
+    if reason == "no-gain" and "last_gain" not in values:
+        template = _NO_GAIN_BEFORE
     try:
-        text = _REASONS[reason].format(**values)
+        text = template.format(**values) if template else reason
     except (KeyError, IndexError):
         text = reason
+    if reason == "no-gain" and is_int(detail.get("last_gain")):
+        text += _over_regularised(records, int(detail["last_gain"]))
     return f"{reason}: {text}"
 
 
-def _gain_interval(
-    run: RunDirectory, records: list[dict[str, Any]], best: int | None
-) -> dict[str, Any] | None:
-    """Paired bootstrap of the kept generation's held-out gain over generation 0 (default
-    metric only: a custom metric is not stored with the run)."""
-    if best is None:
-        return None
-    labels_path, first_path, kept_path = run.heldout_labels_path, run.heldout(0), run.heldout(best)
-    labels, first, kept = (read_array(p) for p in (labels_path, first_path, kept_path))
-    if first.ndim != 2 or kept.shape != first.shape:
-        raise RunFileError(
-            f"{kept_path} holds outputs of shape {kept.shape} and {first_path} of shape "
-            f"{first.shape}; both should be (held-out samples, outputs), the same"
-        )
-    rows = first.shape[0]
-    float_labels = np.issubdtype(labels.dtype, np.floating)
-    if labels.ndim < 1 or len(labels) != rows or (float_labels and labels.size != first.size):
-        raise RunFileError(
-            f"{labels_path} holds labels of shape {labels.shape}, but {first_path} holds "
-            f"{rows} held-out outputs of width {first.shape[1]}; one of them is damaged"
-        )
-    labels_t = torch.from_numpy(labels)
-    interval = paired_bootstrap(
-        default_metric(labels_t), torch.from_numpy(first), torch.from_numpy(kept), labels_t
+def is_int(value: Any) -> bool:
+    return isinstance(value, int) and not isinstance(value, bool)
+
+
+def _over_regularised(records: Sequence[Mapping[str, Any]], last_gain: int) -> str:
+    """The signature of over-regularisation, when the records show it: after generation
+    ``last_gain`` the training fit against the labels fell at every generation while the
+    held-out metric ended below that generation's (repeated self-distillation suppresses
+    ever more of the fit to the labels, Mobahi, Farajtabar & Bartlett 2020); else nothing."""
+    after = [r for r in records if r["generation"] >= last_gain]
+    if len(after) < 2 or any(r.get("diverged") for r in after):
+        return ""
+    if not all(is_number(r.get("train")) and is_number(r.get("heldout")) for r in after):
+        return ""
+    train = [float(r["train"]) for r in after]
+    heldout = [float(r["heldout"]) for r in after]
+    falling = all(b < a for a, b in zip(train, train[1:], strict=False))
+    if not (falling and heldout[-1] < heldout[0]):
+        return ""
+    last = after[-1]["generation"]
+    return (
+        f"; the records show over-regularisation: from generation {last_gain} to {last} the "
+        f"training fit against the labels fell at every generation ({train[0]:.4f} to "
+        f"{train[-1]:.4f}) while held-out fell ({heldout[0]:.4f} to {heldout[-1]:.4f})"
     )
-    return {
-        "observed": interval.observed,
-        "low": interval.low,
-        "high": interval.high,
-        "level": interval.level,
-        "resamples": interval.resamples,
+
+
+def _baselines(run: RunDirectory) -> dict[str, dict[str, Any]]:
+    """The finished baselines of a lineage by name, in the order of :data:`BASELINES`; the
+    matched baseline of the earlier layout (``RUN/baseline/baseline.json``) when there is no
+    new one."""
+    found: dict[str, dict[str, Any]] = {}
+    for name in BASELINES:
+        path = run.baseline_record(name)
+        if _exists(path):
+            found[name] = read_baseline(path, name)
+        elif name == "matched" and _exists(run.baseline_state_path):
+            found[name] = read_baseline(run.baseline_state_path)
+    return found
+
+
+class _Evidence:
+    """A lineage's arms (:class:`~filial.evidence.Arm`) read from its files, and what they
+    show; for the default metric only (a custom metric is not stored with the run)."""
+
+    def __init__(self, run: RunDirectory, seed: int, records: list[dict[str, Any]]) -> None:
+        self.run = run
+        self.labels = read_array(run.heldout_labels_path)
+        labels_t = torch.from_numpy(self.labels)
+        scorer = sample_scores(default_metric(labels_t))
+        assert scorer is not None  # a built-in metric
+        self._score = lambda outputs: scorer(torch.from_numpy(outputs), labels_t).numpy()
+        self.split = halves(len(self.labels), seed) if len(self.labels) >= 2 else None
+        self._shape: tuple[Path, tuple[int, ...]] | None = None
+        self.scores = [
+            None if r.get("diverged") else self._score(self._outputs(run.heldout(g)))
+            for g, r in enumerate(records)
+        ]
+        self.records = records
+
+    def _outputs(self, path: Path) -> np.ndarray:
+        """A held-out outputs file, checked against the held-out labels and against the
+        first outputs read (every model scores the same samples with the same width)."""
+        outputs, labels = read_array(path), self.labels
+        if self._shape is not None and outputs.shape != self._shape[1]:
+            first, shape = self._shape
+            raise RunFileError(
+                f"{path} holds outputs of shape {outputs.shape} and {first} of shape {shape}; "
+                "both should be (held-out samples, outputs), the same"
+            )
+        rows = outputs.shape[0] if outputs.ndim == 2 else -1
+        float_labels = np.issubdtype(labels.dtype, np.floating)
+        if (
+            outputs.ndim != 2
+            or labels.ndim < 1
+            or len(labels) != rows
+            or (float_labels and labels.size != outputs.size)
+        ):
+            width = outputs.shape[1] if outputs.ndim == 2 else "?"
+            raise RunFileError(
+                f"{self.run.heldout_labels_path} holds labels of shape {labels.shape}, but "
+                f"{path} holds {rows} held-out outputs of width {width} (shape "
+                f"{outputs.shape}); one of them is damaged"
+            )
+        if self._shape is None:
+            self._shape = (path, outputs.shape)
+        return outputs
+
+    @property
+    def samples(self) -> int:
+        return len(self.labels)
+
+    def kept(self, best: int) -> tuple[Arm, dict[str, Any] | None]:
+        """The kept generation, its cross-fitted scores (the generation chosen on one half,
+        scored on the other) and what the choices were."""
+        eligible = [s is not None for s in self.scores]
+        plain = self.scores[best]
+        assert plain is not None  # the kept generation did not diverge
+        arm = Arm(f"generation {best}", plain, None, self.records[best].get("test"))
+        if self.split is None:
+            return arm, None
+        matrix = np.stack([s if s is not None else np.zeros_like(plain) for s in self.scores])
+        fitted = cross_fit(matrix, self.split, eligible)
+        arm.fitted = fitted.scores
+        return arm, {
+            "kept": fitted.value,
+            "choices": list(fitted.choices),
+            "halves": [len(self.split[0]), len(self.split[1])],
+        }
+
+    def first(self) -> Arm | None:
+        scores = self.scores[0]
+        if scores is None:
+            return None
+        return Arm("generation 0", scores, scores, self.records[0].get("test"))
+
+    def baseline(self, name: str, record: dict[str, Any]) -> Arm | None:
+        """A baseline's arm: its reported model's scores, and the cross-fitted scores of its
+        epoch choice (early-stopped) or its plain scores (matched: it chose nothing)."""
+        if record.get("diverged") or record.get("heldout") is None:
+            return None
+        checkpoint = self.run.recorded(record["checkpoint"])
+        plain = self._score(self._outputs(checkpoint.parent / HELDOUT_FILE))
+        detail: dict[str, Any] = {"epochs_matched": record["epochs_matched"]}
+        fitted: np.ndarray | None = plain
+        if name in EARLY_STOPPED:
+            detail["best_epoch"] = record.get("best_epoch")
+            fitted = self._epoch_choice(record, detail)
+        if name == "label-smoothing":
+            detail["label_smoothing"] = record.get("label_smoothing")
+        return Arm(name, plain, fitted, record.get("test"), detail)
+
+    def _epoch_choice(self, record: dict[str, Any], detail: dict[str, Any]) -> np.ndarray | None:
+        entry = record.get("heldout_epochs")
+        if entry is None or self.split is None:
+            return None
+        path = self.run.recorded(entry)
+        rows = read_array(path)
+        evaluated = record.get("evaluated") or []
+        if rows.ndim != 2 or rows.shape != (len(evaluated), self.samples):
+            raise RunFileError(
+                f"{path} holds scores of shape {rows.shape}, but the record names "
+                f"{len(evaluated)} evaluated epochs of {self.samples} held-out samples; one of "
+                "them is damaged"
+            )
+        eligible = [bool(np.isfinite(row).all()) for row in rows]
+        if not any(eligible):
+            return None
+        fitted = cross_fit(np.nan_to_num(rows), self.split, eligible)
+        detail["cross_fitted_epochs"] = [evaluated[c] for c in fitted.choices]
+        detail["cross_fitted"] = fitted.value
+        return fitted.scores
+
+
+def _evidence(
+    run: RunDirectory,
+    settings: dict[str, Any],
+    records: list[dict[str, Any]],
+    best: int | None,
+    baselines: dict[str, dict[str, Any]],
+) -> tuple[dict[str, Any], list[tuple[Arm, Arm]]]:
+    """The comparisons of the kept generation (plain data) and the arm pairs behind them."""
+    empty: dict[str, Any] = {
+        "comparisons": [],
+        "cross_fitted": None,
+        "samples": None,
+        "matched_vs_first": None,
     }
+    if best is None or settings["metric"] != "default":
+        return empty, []
+    found = _Evidence(run, settings["seed"], records)
+    kept, fitted = found.kept(best)
+    others = [found.first()] + [found.baseline(n, r) for n, r in baselines.items()]
+    pairs = [(kept, other) for other in others if other is not None]
+    arms = {other.name: other for _, other in pairs}
+    if fitted is not None:
+        fitted["baselines"] = {
+            o.name: o.detail["cross_fitted"] for _, o in pairs if "cross_fitted" in o.detail
+        }
+    matched, first = arms.get("matched"), arms.get("generation 0")
+    return {
+        "comparisons": [compare(k, o) for k, o in pairs],
+        "cross_fitted": fitted,
+        "samples": found.samples,
+        # what more epochs on the labels did: the matched baseline against generation 0
+        "matched_vs_first": compare(matched, first) if matched and first else None,
+    }, pairs
 
 
 def summarize_lineage(
     lineage_dir: str | Path, seed: int | None = None, hint: str = ""
 ) -> dict[str, Any]:
-    """One lineage's records, decision, kept generation, gain interval and baseline.
+    """One lineage's records, decision, kept generation, baselines and what the comparisons
+    show (gains with intervals, plain and cross-fitted, and the verdict).
 
     Every file read is checked first (:mod:`filial.reading`); ``hint`` ends the message when
     ``lineage.json`` is missing.
     """
+    return _lineage(lineage_dir, seed, hint)[0]
+
+
+def _lineage(
+    lineage_dir: str | Path, seed: int | None = None, hint: str = ""
+) -> tuple[dict[str, Any], list[tuple[Arm, Arm]]]:
     run = RunDirectory(lineage_dir)
     lineage_dir, state_path = run.root, run.state_path
     state = read_state(state_path, hint)
@@ -110,19 +289,26 @@ def summarize_lineage(
             f"{lineage_dir.name} of seed {seed}; the seed folders were renamed or mixed up"
         )
     best = decision.get("best") if records else None
-    baseline_path = run.baseline_state_path
-    return {
+    baselines = _baselines(run)
+    evidence, pairs = _evidence(run, settings, records, best, baselines)
+    first = next((c for c in evidence["comparisons"] if c["against"] == "generation 0"), None)
+    summary = {
         "seed": settings["seed"],
         "lineage_dir": str(lineage_dir),
         "targets": settings["targets"],
         "records": records,
         "best": best,
         "stop_reason": decision.get("reason") if decision.get("stop") else None,
-        "stop_in_words": reason_in_words(decision, settings),
+        "stop_in_words": reason_in_words(decision, settings, records),
         "checkpoint": str(run.recorded(records[best]["checkpoint"])) if best is not None else None,
-        "gain": _gain_interval(run, records, best) if settings["metric"] == "default" else None,
-        "baseline": read_baseline(baseline_path) if _exists(baseline_path) else None,
+        # the kept generation over generation 0 (plain), as earlier reports gave it
+        "gain": first["plain"] if first is not None else None,
+        "baseline": baselines.get("matched"),
+        "baselines": baselines,
+        **evidence,
     }
+    summary["verdict"] = verdict(summary)
+    return summary, pairs
 
 
 def _exists(path: Path) -> bool:
@@ -157,16 +343,15 @@ def summarize(run_dir: str | Path) -> dict[str, Any]:
             "moved or deleted, or the run stopped before that seed began (rerun the same "
             "filial run command to resume)"
         )
-        lineages = [
-            summarize_lineage(recipe_run.seed(s).root, s, hint.format(seed=s)) for s in seeds
-        ]
+        found = [_lineage(recipe_run.seed(s).root, s, hint.format(seed=s)) for s in seeds]
     elif _exists(state_path):
         recipe = None
-        lineages = [summarize_lineage(run_dir)]
+        found = [_lineage(run_dir)]
     else:
         raise RunFileError(
             f"{run_dir} is not a filial run directory (no {RECIPE_FILE} and no {STATE_FILE})"
         )
+    lineages = [x for x, _ in found]
     tensorboard = recipe_run.tensorboard_path
     depth = max((len(x["records"]) for x in lineages), default=0)
     generations = []
@@ -174,8 +359,11 @@ def summarize(run_dir: str | Path) -> dict[str, Any]:
         row: dict[str, Any] = {"generation": g}
         present = [x["records"][g] for x in lineages if len(x["records"]) > g]
         row["seeds"] = len(present)
+        row["of_seeds"] = len(lineages)
         for key in ("heldout", "test", "train", "ensemble"):
             row[f"{key}_mean"], row[f"{key}_std"] = spread([r.get(key) for r in present])
+            if len(present) < 2:
+                row[f"{key}_std"] = None  # one seed has no spread
         generations.append(row)
     return {
         "run_dir": str(run_dir),
@@ -183,8 +371,105 @@ def summarize(run_dir: str | Path) -> dict[str, Any]:
         "lineages": lineages,
         "generations": generations,
         "chosen": {str(x["seed"]): x["best"] for x in lineages},
+        "across": _across(found) if len(found) > 1 else None,
         "tensorboard": f"tensorboard --logdir {tensorboard}" if tensorboard.is_dir() else None,
     }
+
+
+def _across(found: list[tuple[dict[str, Any], list[tuple[Arm, Arm]]]]) -> dict[str, Any]:
+    """The gains averaged over the seeds, each with one interval: every resample draws the same
+    held-out samples for every seed (so the seeds must share one held-out set)."""
+    seeds = len(found)
+    out: dict[str, Any] = {"seeds": seeds, "comparisons": [], "samples": None, "note": None}
+    if not all(pairs for _, pairs in found):
+        out["note"] = "some seeds have no intervals (a custom metric or no kept generation)"
+        return out
+    labels = [read_array(RunDirectory(x["lineage_dir"]).heldout_labels_path) for x, _ in found]
+    if any(a.shape != labels[0].shape or not np.array_equal(a, labels[0]) for a in labels):
+        out["note"] = "the seeds were held out on different samples, so no joint interval"
+        return out
+    names = [o.name for _, o in found[0][1]]
+    for name in names:
+        pairs = [next((p for p in pairs if p[1].name == name), None) for _, pairs in found]
+        if all(p is not None for p in pairs):
+            out["comparisons"].append(across_seeds([p for p in pairs if p is not None]))
+    out["samples"] = len(labels[0])
+    kept = [x["best"] for x, _ in found]
+    subject = "generations" if any(k for k in kept) else "the lineages (generation 0 kept by each)"
+    out["verdict"] = _verdict(out["comparisons"], out["samples"], subject, seeds)
+    return out
+
+
+# -- verdicts ----------------------------------------------------------------------------
+
+
+def _interval_words(found: dict[str, Any]) -> str:
+    return f"{found['level']:.0%} interval {_signed(found['low'])} to {_signed(found['high'])}"
+
+
+def _gain_of(c: dict[str, Any]) -> tuple[dict[str, Any], str]:
+    """The figure a comparison is judged on: cross-fitted when there is one."""
+    if c["cross_fitted"] is not None:
+        return c["cross_fitted"], "cross-fitted"
+    return c["plain"], "plain"
+
+
+def _verdict(
+    comparisons: list[dict[str, Any]], samples: int | None, subject: str, seeds: int = 1
+) -> dict[str, Any]:
+    """One sentence on the comparisons: against the closest baseline when there are
+    baselines, else against generation 0; established, inconclusive or worse."""
+    on = f"on {samples} held-out samples" + (f" ({seeds} seeds)" if seeds > 1 else "")
+    baselines = [c for c in comparisons if c["against"] != "generation 0"]
+    target = closest(baselines) if baselines else closest(comparisons)
+    if target is None:
+        return {"text": None, "status": None, "closest": None}
+    gain, kind = _gain_of(target)
+    name, status = target["against"], target["status"]
+    if baselines:
+        early = any(c["against"] in EARLY_STOPPED for c in baselines)
+        opponent = "early stopping" if early else "the matched baseline"
+        which = f"the closest baseline, {name}," if len(baselines) > 1 else name
+    else:
+        opponent = which = "generation 0"
+    figures = f"{kind} gain {_signed(gain['observed'])}, {_interval_words(gain)}"
+    if status == "established":
+        text = (
+            f"{subject} beat {opponent}: by {_signed(gain['observed'])} over "
+            f"{which.rstrip(',')} ({figures}), established {on}"
+        )
+    elif status == "worse":
+        text = (
+            f"{subject} did not beat {opponent}: {which} did better by "
+            f"{-gain['observed']:.4f} ({figures}), established {on}"
+        )
+    elif gain["observed"] < 0:
+        text = (
+            f"not established that {subject} beat {opponent}, nor that they did worse: "
+            f"{which} did better by {-gain['observed']:.4f} ({figures}): inconclusive {on}"
+        )
+    else:
+        text = (
+            f"not established that {subject} beat {opponent}: {_signed(gain['observed'])} "
+            f"over {which.rstrip(',')} ({figures}): inconclusive {on}"
+        )
+    return {"text": text, "status": status, "closest": name, "gain": gain, "judged_on": kind}
+
+
+def verdict(lineage: dict[str, Any]) -> dict[str, Any]:
+    """The verdict of one lineage of :func:`summarize` (``lineage["verdict"]``)."""
+    best = lineage["best"]
+    if best is None:
+        return {"text": None, "status": None, "closest": None}
+    baselines = [c for c in lineage["comparisons"] if c["against"] != "generation 0"]
+    if best == 0 and not baselines:
+        text = (
+            "generation 0 was kept: no later generation beat it on held-out data, so "
+            "generations did not help in this lineage"
+        )
+        return {"text": text, "status": "first-kept", "closest": None}
+    subject = "generations" if best > 0 else "the lineage (generation 0 kept)"
+    return _verdict(lineage["comparisons"], lineage["samples"], subject)
 
 
 def generation_table(
@@ -217,53 +502,168 @@ def _signed(value: float) -> str:
     return f"{value:+.4f}"
 
 
+def _bracket(found: dict[str, Any] | None) -> str:
+    if found is None:
+        return "-"
+    return f"{_signed(found['observed'])} [{_signed(found['low'])}, {_signed(found['high'])}]"
+
+
+_STATUS = {
+    "established": "established",
+    "worse": "worse, established",
+    "inconclusive": "inconclusive",
+}
+
+
+def _gain_table(comparisons: Sequence[dict[str, Any]], across: bool = False) -> list[str]:
+    """One row per comparison: plain and cross-fitted gain with intervals, test, status."""
+    lines = [f"  {'over':<18} {'plain':>27} {'cross-fitted':>27} {'test':>8}  status"]
+    for c in comparisons:
+        test = f"{_signed(c['test'])}" if c.get("test") is not None else "-"
+        lines.append(
+            f"  {c['against']:<18} {_bracket(c['plain']):>27} {_bracket(c['cross_fitted']):>27} "
+            f"{test:>8}  {_STATUS[c['status']]}"
+        )
+        if across and c["cross_fitted"] is not None:
+            per = ", ".join(_signed(v) for v in c["cross_fitted"]["per_seed"])
+            lines.append(f"  {'':<18} per seed (cross-fitted): {per}")
+    return lines
+
+
+def _baseline_head(name: str, record: Mapping[str, Any]) -> str:
+    epochs = record["epochs_matched"]
+    if name == "matched":
+        return f"matched baseline ({epochs} epochs on the labels, the last kept)"
+    every = record.get("every", 1)
+    scored = "after every epoch" if every == 1 else f"after every {every} epochs and the last"
+    kept = record.get("best_epoch")
+    smoothing = (
+        f"label smoothing {record.get('label_smoothing')}, " if name == "label-smoothing" else ""
+    )
+    at = f"kept after epoch {int(kept) + 1}" if kept is not None else "no epoch kept"
+    return f"{name} baseline ({smoothing}{epochs} epochs on the labels, held-out {scored}, {at})"
+
+
+def _matched_shows(x: dict[str, Any], record: Mapping[str, Any]) -> str:
+    """What the matched baseline shows: whether more epochs on the labels overfit."""
+    c = x.get("matched_vs_first")
+    first = x["records"][0].get("heldout") if x["records"] else None
+    if c is None:
+        if is_number(first) and is_number(record.get("heldout")):
+            return f"; generation 0 reached {first:.4f}"
+        return ""
+    gain, samples = c["plain"], c["samples"]
+    words = _interval_words(gain)
+    if c["status"] == "worse":
+        return (
+            f": {-gain['observed']:.4f} below generation 0 ({words}): more epochs on the labels "
+            "overfit, so what generations gain is not the gain of more training"
+        )
+    if c["status"] == "established":
+        return (
+            f": {gain['observed']:.4f} above generation 0 ({words}): more epochs on the labels "
+            "helped, so part of a gain of generations may be the gain of more training"
+        )
+    return (
+        f": {_signed(gain['observed'])} against generation 0 ({words}): more epochs on the "
+        f"labels neither helped nor hurt, inconclusive on {samples} held-out samples"
+    )
+
+
+def _lineage_lines(x: dict[str, Any]) -> list[str]:
+    out = ["", f"seed {x['seed']} ({x['targets']} targets, {x['lineage_dir']})"]
+    out.append(generation_table(x["records"], x["best"], x["targets"]))
+    out.append(f"stopped: {x['stop_in_words']}")
+    best = x["best"]
+    if best is not None:
+        out.append(f"kept generation {best}: {x['checkpoint']}")
+    if best == 0:
+        out.append("generation 0 was kept: no later generation beat it on held-out data")
+    if x["comparisons"]:
+        out.append(
+            f"gains of the kept generation {best} ({x['samples']} held-out samples; "
+            "paired bootstrap 95 % intervals; cross-fitted: chosen on one half of the "
+            "held-out set, scored on the other, both ways; test: reported, never used to "
+            "choose)"
+        )
+        out.extend(_gain_table(x["comparisons"]))
+    fitted = x.get("cross_fitted")
+    if fitted is not None:
+        a, b = fitted["choices"]
+        line = (
+            f"cross-fitted held-out: {fitted['kept']:.4f} with generations (generation {a} "
+            f"chosen on one half, {b} on the other)"
+        )
+        for c in x["comparisons"]:
+            detail = c.get("detail") or {}
+            if "cross_fitted" in detail:
+                a, b = (e + 1 for e in detail["cross_fitted_epochs"])
+                line += f"; {detail['cross_fitted']:.4f} {c['against']} (epochs {a} and {b})"
+        out.append(line)
+    for name, record in x["baselines"].items():
+        head = _baseline_head(name, record)
+        if record.get("heldout") is None:
+            out.append(f"{head}: diverged")
+            continue
+        line = f"{head}: held-out {record['heldout']:.4f}"
+        if record.get("test") is not None:
+            line += f", test {record['test']:.4f}"
+        if name == "matched":
+            line += _matched_shows(x, record)
+        out.append(line)
+    if x["verdict"].get("text"):
+        out.append(f"verdict: {x['verdict']['text']}")
+    return out
+
+
+def _pair(row: dict[str, Any], key: str) -> str:
+    mean, std = row[f"{key}_mean"], row[f"{key}_std"]
+    if mean is None:
+        return f"{'-':>17}"
+    return f"{mean:>9.4f} +-{std:.4f}" if std is not None else f"{mean:>9.4f}        -"
+
+
+def _across_lines(summary: dict[str, Any]) -> list[str]:
+    out = ["", "across seeds (mean +- standard deviation)"]
+    out.append(f"{'gen':>4} {'seeds':>5} {'held-out':>17} {'test':>17} {'train':>17}")
+    partial = []
+    for row in summary["generations"]:
+        seeds = f"{row['seeds']}/{row['of_seeds']}"
+        out.append(
+            f"{row['generation']:>4} {seeds:>5} {_pair(row, 'heldout')} "
+            f"{_pair(row, 'test')} {_pair(row, 'train')}"
+        )
+        if row["seeds"] < row["of_seeds"]:
+            partial.append(row)
+    for row in partial:
+        out.append(
+            f"generation {row['generation']}: reached by {row['seeds']} of {row['of_seeds']} "
+            "seeds; its figures are of those seeds alone"
+        )
+    chosen = ", ".join(f"seed {s}: {g}" for s, g in summary["chosen"].items())
+    out.append(f"chosen generation per seed: {chosen}")
+    across = summary.get("across") or {}
+    if across.get("comparisons"):
+        out.append(
+            f"gains of the kept generations, mean over {across['seeds']} seeds (bootstrap "
+            f"intervals that draw seeds and the {across['samples']} held-out samples, the "
+            "same for every seed drawn)"
+        )
+        out.extend(_gain_table(across["comparisons"], across=True))
+        if across["verdict"].get("text"):
+            out.append(f"verdict across {across['seeds']} seeds: {across['verdict']['text']}")
+    elif across.get("note"):
+        out.append(f"no gains across seeds: {across['note']}")
+    return out
+
+
 def format_report(summary: dict[str, Any]) -> str:
     """The text of ``filial report``."""
     out = [f"run {summary['run_dir']}: {len(summary['lineages'])} lineage(s)"]
     for x in summary["lineages"]:
-        out.append("")
-        out.append(f"seed {x['seed']} ({x['targets']} targets, {x['lineage_dir']})")
-        out.append(generation_table(x["records"], x["best"], x["targets"]))
-        out.append(f"stopped: {x['stop_in_words']}")
-        if x["best"] is not None:
-            out.append(f"kept generation {x['best']}: {x['checkpoint']}")
-        gain = x["gain"]
-        if x["best"] == 0:
-            out.append("generation 0 was kept: later generations did not beat it on held-out data")
-        elif gain is not None:
-            out.append(
-                f"held-out gain of generation {x['best']} over generation 0: "
-                f"{_signed(gain['observed'])} (paired bootstrap {gain['level']:.0%} interval "
-                f"{_signed(gain['low'])} to {_signed(gain['high'])}, {gain['resamples']} resamples)"
-            )
-        base = x["baseline"]
-        if base is not None and x["best"] is not None:
-            kept = x["records"][x["best"]]
-            head = f"matched baseline ({base['epochs_matched']} epochs on the labels):"
-            if base.get("heldout") is None:
-                out.append(f"{head} diverged")
-            else:
-                line = f"{head} held-out {base['heldout']:.4f} against {kept['heldout']:.4f}"
-                line += " for the kept generation"
-                if base.get("test") is not None and kept.get("test") is not None:
-                    line += f"; test {base['test']:.4f} against {kept['test']:.4f}"
-                out.append(line)
+        out.extend(_lineage_lines(x))
     if len(summary["lineages"]) > 1:
-        out.append("")
-        out.append("across seeds (mean +- standard deviation)")
-        out.append(f"{'gen':>4} {'seeds':>5} {'held-out':>17} {'test':>17} {'train':>17}")
-
-        def pair(row: dict[str, Any], key: str) -> str:
-            mean, std = row[f"{key}_mean"], row[f"{key}_std"]
-            return f"{'-':>17}" if mean is None else f"{mean:>9.4f} +-{std:.4f}"
-
-        for row in summary["generations"]:
-            out.append(
-                f"{row['generation']:>4} {row['seeds']:>5} {pair(row, 'heldout')} "
-                f"{pair(row, 'test')} {pair(row, 'train')}"
-            )
-        chosen = ", ".join(f"seed {s}: {g}" for s, g in summary["chosen"].items())
-        out.append(f"chosen generation per seed: {chosen}")
+        out.extend(_across_lines(summary))
     if summary["tensorboard"]:
         out.append("")
         out.append(f"TensorBoard: {summary['tensorboard']}")

@@ -9,7 +9,10 @@ A lineage's (:class:`RunDirectory`, written by :class:`~filial.Lineage`)::
     RUN/genG/student.pt       generation G's weights-only state_dict
     RUN/genG/heldout.npy      its held-out outputs
     RUN/genG/targets.*        its outputs on the training set (see filial.store)
-    RUN/baseline/             the matched baseline: baseline.json, gen0/
+    RUN/baseline/NAME/        a baseline trained on the labels: baseline.json, gen0/ (and, for
+                              the early-stopped ones, heldout_epochs.npy)
+    RUN/baseline/baseline.json, RUN/baseline/gen0/
+                              the matched baseline as runs before named baselines wrote it
     RUN/tb/                   TensorBoard runs
     RUN/.lock                 who holds the directory now
 
@@ -51,6 +54,8 @@ CHECKPOINT_FILE = "student.pt"
 HELDOUT_FILE = "heldout.npy"
 BASELINE_DIR = "baseline"
 BASELINE_FILE = "baseline.json"
+# Per-sample held-out scores of each epoch an early-stopped baseline evaluated.
+BASELINE_EPOCHS_FILE = "heldout_epochs.npy"
 TENSORBOARD_DIR = "tb"
 RECIPE_FILE = "recipe.toml"
 # What a lineage writes in its run directory, and so all that fresh=True deletes.
@@ -180,11 +185,29 @@ class RunDirectory:
 
     @property
     def baseline_path(self) -> Path:
+        """The folder of every baseline (``RUN/baseline``)."""
         return self.root / BASELINE_DIR
 
     @property
     def baseline_state_path(self) -> Path:
+        """The matched baseline's record as runs before named baselines wrote it
+        (``RUN/baseline/baseline.json``, its files in ``RUN/baseline/gen0``): still read."""
         return self.baseline_path / BASELINE_FILE
+
+    def baseline(self, name: str) -> RunDirectory:
+        """The run directory of the baseline called ``name`` (``RUN/baseline/NAME``)."""
+        return RunDirectory(self.baseline_path / name)
+
+    def baseline_record(self, name: str) -> Path:
+        return self.baseline_path / name / BASELINE_FILE
+
+    def baseline_epochs(self, name: str) -> Path:
+        return self.baseline_path / name / BASELINE_EPOCHS_FILE
+
+    def baseline_entry(self, name: str, entry: str) -> str:
+        """A path inside baseline ``name``'s folder as a record names it (relative to the
+        lineage's run directory)."""
+        return f"{BASELINE_DIR}/{name}/{entry}"
 
     def generation(self, generation: int) -> Path:
         return self.root / generation_name(generation)

@@ -468,6 +468,7 @@ class StoreWriter:
         self.dtype, self.top_k = dtype, top_k
         self.owner = os.getpid() if owner is None else int(owner)
         self._creates = owner is None
+        self._made_directory = False  # create() made the folder (discard() then removes it)
         width = self.classes if top_k is None else int(top_k)
         shape = (self.count, self.views, width)
         self.parts: list[_Part] = []
@@ -543,7 +544,7 @@ class StoreWriter:
             # A folder this writer made and nothing else filled (a pass refused before anything
             # of its generation was written) goes too.
             folder = Path(self.directory)
-            if getattr(self, "_made_directory", False) and not any(folder.iterdir()):
+            if self._made_directory and not any(folder.iterdir()):
                 folder.rmdir()
 
     def publish(self, *, peak: float, fingerprint: str, teacher_sha256: str) -> TargetStore:
