@@ -531,7 +531,8 @@ def test_filial_run_under_torchrun_runs_seeds_and_the_matched_baseline(tmp_path)
     for seed in (0, 1):
         state = json.loads((run_dir / f"seed{seed}" / "lineage.json").read_text())
         assert [r["generation"] for r in state["records"]] == [0, 1]
-        baseline = json.loads((run_dir / f"seed{seed}" / "baseline" / "baseline.json").read_text())
+        folder = run_dir / f"seed{seed}" / "baseline" / "matched"  # RUN/baseline/NAME/
+        baseline = json.loads((folder / "baseline.json").read_text())
         assert baseline["epochs_matched"] == 4
         for record in state["records"]:
             directory = run_dir / f"seed{seed}" / f"gen{record['generation']}"
