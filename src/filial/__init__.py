@@ -8,10 +8,12 @@ stop helping, and the best student is kept. Start with :class:`Lineage`.
 from .fit import fit_epochs
 from .generation import Generation
 from .lineage import Lineage, Result
+from .pool import Admission
 from .stopping import Decision, StopRule
 from .store import TargetStore
 
 __all__ = [
+    "Admission",
     "Decision",
     "Generation",
     "Lineage",

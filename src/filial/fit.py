@@ -97,7 +97,8 @@ class EpochFit:
             # Sums stay on the device; they are read once per epoch (no sync per step).
             total = torch.zeros((), device=device)
             hits = torch.zeros((), device=device)
-            batches = samples = 0
+            counted = torch.zeros((), dtype=torch.int64, device=device)
+            batches = 0
             classify = True
             for inputs, labels, targets in gen.loader:
                 if fault_name is not None:
@@ -112,15 +113,17 @@ class EpochFit:
                 classify = not labels.is_floating_point()
                 if classify:
                     hits += (outputs.detach().argmax(dim=1) == labels).sum()
+                    # pool rows (label NO_LABEL, -1) have no label to score against
+                    counted += (labels >= 0).sum()
                 else:
                     hits -= (outputs.detach() - labels.view_as(outputs)).pow(2).mean() * len(labels)
+                    counted += len(labels)
                 batches += 1
-                samples += len(labels)
             if scheduler is not None:
                 scheduler.step()
-            sums = [float(total), float(hits), batches, samples]
+            sums = [float(total), float(hits), batches, int(counted)]
             if distributed.is_distributed():
-                sums = distributed.all_sum([total, hits, batches, samples])
+                sums = distributed.all_sum([total, hits, batches, counted])
             mean = sums[0] / max(sums[2], 1)
             running = sums[1] / max(sums[3], 1)
             name = "running_accuracy" if classify else "running_neg_mse"

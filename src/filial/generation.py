@@ -34,6 +34,7 @@ from .evaluation import Predictions, evaluate, finite_module
 from .losses import StudentLoss
 from .metrics import Metric, summed_form
 from .observers import Observer
+from .pool import PoolData, PoolLoss, PoolPass, PoolTeacher, conclude, mixed_loader, pool_pass
 from .records import EpochEntry, GenerationRecord, mode_of
 from .rundir import RunDirectory
 from .seeding import Stream, stream_seed
@@ -57,6 +58,7 @@ class GenerationInputs:
     replay: Replay | None = None  # the training data augment: fetch (sample, view) under seeds
     # Refuses a finished model that is not what model_fn builds (models.ModelChecks.finished).
     check_finished: Callable[[nn.Module, int], None] | None = None
+    pool: PoolData | None = None  # an unlabelled pool (filial.pool), labelled by every teacher
 
 
 @dataclass
@@ -149,8 +151,10 @@ class Generation:
         store: TargetStore | None = None,
         online_teacher: nn.Module | None = None,
         observer: Observer | None = None,
+        pool_teacher: PoolTeacher | None = None,
     ) -> None:
         self.index = index
+        self.pool_teacher = pool_teacher  # the teacher's pool targets and admitted samples
         self.model = model
         self.teacher = teacher
         self.store = store
@@ -163,6 +167,8 @@ class Generation:
         self._loader: CountedLoader | None = None
         self._passes = Passes()
         self._started = time.perf_counter()
+        pool = inputs.pool
+        self._loss: Any = inputs.loss if pool is None else PoolLoss(inputs.loss, pool.admission)
 
     @property
     def directory(self) -> Any:
@@ -186,9 +192,16 @@ class Generation:
                 # (no store) trains on the user's own random augmentation.
                 replay = inputs.replay if self.store is not None else None
                 choice = stream_seed(inputs.seed, Stream.VIEWS, self.index)
-                wrapped = training_loader(
-                    inputs.train_loader, self.store, replay, choice_seed=choice
-                )
+                if self.pool_teacher is not None and inputs.pool is not None:
+                    assert self.store is not None  # a pool teacher is a cached teacher
+                    wrapped = mixed_loader(
+                        inputs.train_loader, inputs.pool, self.pool_teacher, self.store, replay,
+                        choice,
+                    )
+                else:
+                    wrapped = training_loader(
+                        inputs.train_loader, self.store, replay, choice_seed=choice
+                    )
             self._loader = CountedLoader(wrapped, self._passes, self.history)
         return self._loader
 
@@ -196,8 +209,9 @@ class Generation:
         self, outputs: torch.Tensor, labels: torch.Tensor, targets: torch.Tensor | None
     ) -> torch.Tensor:
         """The generation's training loss; ``targets`` is None in generation 0. Each value is
-        also kept (detached) for the pass's mean loss in the record."""
-        loss = self._inputs.loss(outputs, labels, targets)
+        also kept (detached) for the pass's mean loss in the record. With an unlabelled pool,
+        rows labelled ``filial.pool.NO_LABEL`` (-1) are pool rows (``filial.pool.PoolLoss``)."""
+        loss = self._loss(outputs, labels, targets)
         self._passes.losses.append(loss.detach())
         return loss
 
@@ -233,18 +247,23 @@ class Generation:
             figures=FigureSpec(loss.kind, loss.temperature, inputs.metric),
             fault=fault,
         )
+        pooled: PoolPass | None = None
         try:
+            if inputs.pool is not None and inputs.write_targets:
+                pooled = pool_pass(model, inputs.pool, seed, inputs.store, self.directory, fault)
             heldout = evaluate(model, inputs.heldout_loader, seed)
             test = None
             if inputs.test_loader is not None:
                 test = evaluate(model, inputs.test_loader, seed)
             write = None
             if passed is not None and heldout is not None:
-                write = functools.partial(self._write, model, passed, heldout, test)
+                write = functools.partial(self._write, model, passed, heldout, test, pooled)
             self.record = self._conclude(self, write)
         finally:
             if passed is not None:
                 passed.discard()  # a store that was not published (diverged, or a failure)
+            if pooled is not None:
+                pooled.discard()
         return self.record
 
     def _write(
@@ -253,6 +272,7 @@ class Generation:
         passed: TeacherPass,
         heldout: Predictions,
         test: Predictions | None,
+        pooled: PoolPass | None = None,
     ) -> Measured:
         """Score the passes and write this generation's files (on the rank that writes)."""
         inputs = self._inputs
@@ -261,7 +281,7 @@ class Generation:
         assert figures is not None  # finish always asks for them
         diverged = not (
             finite_module(model) and passed.finite and bool(torch.isfinite(heldout.outputs).all())
-        )
+        ) or (pooled is not None and not pooled.finite)
         record: Any = {
             "generation": self.index,
             "teacher": self.teacher,
@@ -278,6 +298,15 @@ class Generation:
         if not diverged:
             record.update(figures.statistics)
         self._save(model, passed, heldout, record)
+        if pooled is not None and inputs.pool is not None and not diverged:
+            record["pool"] = conclude(
+                pooled,
+                inputs.pool,
+                self.directory,
+                self.index,
+                self.pool_teacher,
+                record["checkpoint_sha256"],
+            )
         record["epochs"] = sorted(self.history, key=lambda entry: entry["epoch"])
         record["passes"] = self._passes.count  # over gen.loader, by the user's loop or fit
         record["batches"] = self._passes.batches

@@ -44,6 +44,15 @@ from .generation import Generation, GenerationInputs, Measured
 from .metrics import Metric, as_float_metric, default_metric, metric_name, sample_scores
 from .models import ModelChecks
 from .observers import ConsoleProgress, Observer, Observers, TensorBoardRuns
+from .pool import (
+    Admission,
+    PoolData,
+    check_mixable,
+    check_no_label,
+    check_pool_settings,
+    open_teacher,
+    pool_data,
+)
 from .probe import Probe, check_augmentation, probe, replay_for, say_once, warn_changing_heldout
 from .records import BaselineRecord, DecisionState, GenerationRecord
 from .rundir import LineageState, RunDirectory
@@ -150,6 +159,8 @@ class Lineage:
         progress: bool = True,
         tensorboard: bool | str | Path = True,
         observers: Sequence[Observer] = (),
+        unlabeled_loader: DataLoader | None = None,
+        admission: Admission | None = None,
     ) -> None:
         # Long only for its arguments: each is checked elsewhere, and the rooms are built here.
         settings, train, heldout = _checked_arguments(
@@ -169,6 +180,9 @@ class Lineage:
                 "teacher_mode": teacher_mode,
                 "seed": seed,
             },
+        )
+        pool_settings = _checked_pool(
+            admission, unlabeled_loader, train_loader, targets, teacher_mode, train.labels
         )
         loss = settings.loss()
         self._checks = ModelChecks(model_fn, train.inputs, train.labels, loss)
@@ -191,6 +205,12 @@ class Lineage:
             (train_loader, heldout_loader, test_loader), (train, heldout), replay, metric, model_fn
         )
         self.settings: dict[str, Any] = saved_settings(settings, facts)
+        # The unlabelled pool (filial.pool): its settings and fingerprint; None without one.
+        self._pool: PoolData | None = None
+        if pool_settings is not None:
+            assert unlabeled_loader is not None
+            self._pool = pool_data(unlabeled_loader, pool_settings, replay, settings.seed)
+        self.settings["pool"] = None if self._pool is None else self._pool.saved()
         metric_fn = metric or default_metric(torch.as_tensor(train.labels))
         # Per-sample scores of a built-in metric: the report's bootstrap and cross-fitting.
         self._sample_scores = sample_scores(metric_fn) if metric is None else None
@@ -207,6 +227,7 @@ class Lineage:
             write_targets=not _online(settings),  # online students never read a cache
             replay=replay,
             check_finished=self._checks.finished,
+            pool=self._pool,
         )
         self._teachers = TeacherStores(
             self._run, model_fn, train_loader, replay, spec, settings.seed
@@ -402,11 +423,13 @@ class Lineage:
         self._state.check_current(f"handing out generation {index}")
         records = self._state.records
         previous = records[-1] if records else None
-        online = store = None
+        online = store = pool_teacher = None
         if previous is not None and self.settings["teacher_mode"] == "online":
             online = load_generation(self.model_fn, self.run_dir, previous)
         elif previous is not None:
             store = self._teachers.open(previous)
+            if self._pool is not None:
+                pool_teacher = open_teacher(self._run, previous, self._pool)
         seed_generation(self.settings["seed"], index, self._inputs.train_loader)
         model = self._checks.new_model(index)
         teacher = previous["generation"] if previous is not None else None
@@ -420,6 +443,7 @@ class Lineage:
             store=store,
             online_teacher=online,
             observer=self._observers,
+            pool_teacher=pool_teacher,
         )
 
     def _conclude(self, gen: Generation, write: Callable[[], Measured] | None) -> GenerationRecord:
@@ -570,6 +594,25 @@ def _checked_arguments(
     problems.raise_if_any()
     assert settings is not None and train is not None and heldout is not None  # checked above
     return settings, train, heldout
+
+
+def _checked_pool(
+    admission: Any,
+    unlabeled_loader: Any,
+    train_loader: DataLoader,
+    targets: str,
+    mode: str,
+    labels: Any,
+) -> Admission | None:
+    """The pool's settings, whether the training loader can carry mixed epochs, and the
+    probed training labels against the "no label" value."""
+    problems = Problems()
+    found = check_pool_settings(problems, admission, unlabeled_loader, targets, mode)
+    if found is not None:
+        problems.attempt(lambda: check_mixable(train_loader))
+        problems.attempt(lambda: check_no_label(labels))
+    problems.raise_if_any()
+    return found
 
 
 def _check_top_k(settings: Settings, width: int) -> None:

@@ -64,6 +64,8 @@ class GenerationRecord(TypedDict):
     batches: NotRequired[int]
     seconds: float
     stop: NotRequired[StopDetail]
+    # With an unlabelled pool: this generation's pass over it (filial.pool.figures_of)
+    pool: NotRequired[dict[str, Any]]
 
 
 class DecisionState(TypedDict):

@@ -29,7 +29,7 @@ from .store import STORE_DTYPES
 
 TEACHER_MODES = ("cached", "online")
 # Settings added after the first format of lineage.json: a run written before them used these.
-_ADDED_LATER: dict[str, Any] = {"teacher_mode": "cached", "replayed": False}
+_ADDED_LATER: dict[str, Any] = {"teacher_mode": "cached", "replayed": False, "pool": None}
 
 
 @dataclass(frozen=True)

@@ -1,0 +1,333 @@
+"""The unlabelled pool (filial.pool): selection rules, class balancing, the pool loss, mixed
+batches, records, refusals and resume; scikit-learn's SelfTrainingClassifier as the outside
+reference of the classic form."""
+
+from __future__ import annotations
+
+import json
+import warnings
+
+import numpy as np
+import pytest
+import torch
+import torch.nn.functional as F
+from conftest import TinyNet, blobs
+from torch import nn
+from torch.utils.data import DataLoader, Dataset, TensorDataset
+
+import filial
+from filial.errors import InputError
+from filial.losses import StudentLoss, TopKTargets, soft_cross_entropy
+from filial.pool import NO_LABEL, Admission, PoolLoss, balanced, select
+
+
+class Inputs(Dataset):
+    """A pool of bare inputs (no second item)."""
+
+    def __init__(self, tensor):
+        self.tensor = tensor
+
+    def __len__(self):
+        return len(self.tensor)
+
+    def __getitem__(self, i):
+        return self.tensor[i]
+
+
+def _pool_loader(n=60, seed=4, pairs=False, batch_size=16):
+    data = blobs(n, seed=seed)
+    dataset = data if pairs else Inputs(data.tensors[0])
+    return DataLoader(dataset, batch_size=batch_size)
+
+
+def _lineage(loaders, run_dir, pool, **kwargs):
+    train, heldout, test = loaders
+    options = {"max_generations": 2, "patience": 5, "test_loader": test, "progress": False}
+    options["tensorboard"] = False
+    options.update(kwargs)
+    return filial.Lineage(
+        TinyNet(), train, heldout, run_dir=run_dir, unlabeled_loader=pool, **options
+    )
+
+
+def _hook(lineage, epochs=2, seen=None):
+    for gen in lineage:
+        model = gen.model
+        opt = torch.optim.SGD(model.parameters(), lr=0.1)
+        for epoch in range(epochs):
+            rows = pool_rows = 0
+            for inputs, labels, targets in gen.loader:
+                loss = gen.loss(model(inputs), labels, targets)
+                opt.zero_grad()
+                loss.backward()
+                opt.step()
+                rows += len(labels)
+                pool_rows += int((labels == NO_LABEL).sum())
+            if seen is not None and epoch == 0:
+                seen.append((rows, pool_rows))
+        gen.finish(model)
+    return lineage.result
+
+
+# -- selection (pure functions) ------------------------------------------------------------------
+
+
+def test_threshold_is_strict_and_skips_held_samples():
+    confidence = np.array([0.9, 0.95, 0.5, 0.9000001, 0.99], dtype=np.float32)
+    predicted = np.zeros(5, dtype=np.int64)
+    rule = Admission(select="threshold", threshold=0.9)
+    # scikit-learn's SelfTrainingClassifier: ``selected = max_proba > self.threshold``.
+    assert select(rule, confidence, predicted, 1, np.zeros(0, np.int64), 1).tolist() == [1, 3, 4]
+    assert select(rule, confidence, predicted, 1, np.array([4]), 1).tolist() == [1, 3]
+
+
+def test_top_breaks_ties_by_lower_index_and_growing_share():
+    confidence = np.array([0.5, 0.8, 0.8, 0.9, 0.1, 0.8], dtype=np.float32)
+    predicted = np.zeros(6, dtype=np.int64)
+    none = np.zeros(0, np.int64)
+    top = Admission(select="top", count=3)
+    assert select(top, confidence, predicted, 1, none, 1).tolist() == [1, 2, 3]
+    grow = Admission(select="growing", step=0.34)
+    # student 1: round(0.34 * 6) = 2 most confident; student 2: round(0.68 * 6) = 4.
+    assert select(grow, confidence, predicted, 1, none, 1).tolist() == [1, 3]
+    assert select(grow, confidence, predicted, 2, none, 1).tolist() == [1, 2, 3, 5]
+    # stay: the held samples count towards the share, the rest are the next most confident
+    assert select(grow, confidence, predicted, 2, np.array([1, 3]), 1).tolist() == [2, 5]
+    assert len(select(Admission(select="everything"), confidence, predicted, 1, none, 1)) == 6
+
+
+def test_noisy_student_balancing_against_a_hand_computation():
+    """Xie et al. 2020 (Noisy Student), section 3: per class the most confident images; classes
+    short of the count are duplicated, the others cut to the most confident. Hand computation:
+    class 0 has 5 candidates (cut to the 3 most confident: 0.99, 0.9, 0.8 -> samples 3, 0, 6),
+    class 1 has 1 (duplicated three times), class 2 has 2 (0.7 then 0.6, cycled: 5, 7, 5), class
+    3 has none (absent)."""
+    confidence = np.array([0.9, 0.6, 0.3, 0.99, 0.2, 0.7, 0.8, 0.6, 0.4], dtype=np.float32)
+    predicted = np.array([0, 1, 0, 0, 0, 2, 0, 2, 0])
+    chosen = balanced(confidence, predicted, np.arange(9), 3, classes=4)
+    assert sorted(chosen.tolist()) == sorted([3, 0, 6, 1, 1, 1, 5, 7, 5])
+    assert np.bincount(predicted[chosen], minlength=4).tolist() == [3, 3, 3, 0]
+    # with a threshold, sample 1 (0.6) and 7 (0.6) drop out: class 1 gets none, class 2 is 5x3
+    rule = Admission(select="per_class", count=3, threshold=0.65)
+    found = select(rule, confidence, predicted, 1, np.zeros(0, np.int64), 4)
+    assert sorted(found.tolist()) == sorted([3, 0, 6, 5, 5, 5])
+
+
+def test_admission_settings_are_checked():
+    assert Admission().problems() == []
+    bad = Admission(select="most", threshold=1.5, count=0, step=0, weight=-1, keep="x")
+    text = " ".join(str(p) for p in bad.problems())
+    for word in ("select", "threshold", "step", "weight", "keep"):
+        assert word in text
+    assert Admission(select="top").problems()  # no count
+
+
+# -- the loss ------------------------------------------------------------------------------------
+
+
+def test_pool_loss_against_torch_functional():
+    torch.manual_seed(0)
+    outputs, teacher = torch.randn(6, 4), torch.randn(6, 4)
+    labels = torch.tensor([0, 3, NO_LABEL, 1, NO_LABEL, 2])
+    base = StudentLoss("ce", temperature=2.0, label_weight=0.25)
+    pool = labels == NO_LABEL
+    # labelled rows: the lineage's loss (its own formula, torch.nn.functional per row)
+    soft = torch.stack(
+        [soft_cross_entropy(outputs[i : i + 1], teacher[i : i + 1], 2.0) for i in range(6)]
+    )
+    hard_label = F.cross_entropy(outputs, labels.clamp(min=0), reduction="none")
+    labelled = 0.75 * soft + 0.25 * hard_label
+    soft_loss = PoolLoss(base, Admission(weight=0.5))(outputs, labels, teacher)
+    expected = torch.where(pool, 0.5 * soft, labelled).mean()
+    assert torch.allclose(soft_loss, expected, atol=1e-6)
+    hard = PoolLoss(base, Admission(weight=2.0, pseudo="hard"))(outputs, labels, teacher)
+    pseudo = F.cross_entropy(outputs, teacher.argmax(dim=1), reduction="none")
+    assert torch.allclose(hard, torch.where(pool, 2.0 * pseudo, labelled).mean(), atol=1e-6)
+    # no pool rows: exactly the lineage's loss; generation 0: the labels
+    known = labels.clamp(min=0)
+    plain = PoolLoss(base, Admission())(outputs, known, teacher)
+    assert torch.allclose(plain, base(outputs, known, teacher), atol=1e-6)
+    assert torch.allclose(PoolLoss(base, Admission())(outputs, known, None), F.cross_entropy(
+        outputs, known
+    ))
+    # top-k targets: the class kept first is the hard pseudo-label
+    values, classes = teacher.topk(2, dim=1)
+    unlabelled = torch.full((6,), NO_LABEL)
+    hard_loss = PoolLoss(base, Admission(pseudo="hard"))
+    top = hard_loss(outputs, unlabelled, TopKTargets(values, classes))
+    assert torch.allclose(top, pseudo.mean(), atol=1e-6)
+
+
+# -- refusals ------------------------------------------------------------------------------------
+
+
+def test_bad_pools_are_refused_before_anything_is_written(loaders, tmp_path):
+    run = tmp_path / "run"
+    with pytest.raises(InputError, match="at least one sample"):
+        _lineage(loaders, run, DataLoader(Inputs(torch.zeros(0, 5)), batch_size=4))
+    with pytest.raises(ValueError, match="needs an unlabeled_loader"):
+        _lineage(loaders, run, None, admission=Admission())
+    with pytest.raises(ValueError, match="targets=.ce."):
+        _lineage(loaders, run, _pool_loader(), targets="l2")
+    with pytest.raises(InputError, match="pairs"):
+        _lineage(loaders, run, _pool_loader(), admission=Admission(audit=True))
+    floats = DataLoader(TensorDataset(torch.zeros(8, 5), torch.zeros(8)), batch_size=4)
+    with pytest.raises(InputError, match="integer class labels"):
+        _lineage(loaders, run, floats, admission=Admission(audit=True))
+    train, heldout, test = loaders
+    own = DataLoader(train.dataset, batch_sampler=[[0, 1], [2, 3]])
+    with pytest.raises(InputError, match="builds its sampler"):
+        _lineage((own, heldout, test), run, _pool_loader())
+    assert not run.exists()
+
+
+def test_a_training_label_of_minus_one_is_named(tmp_path):
+    data = blobs(40, seed=1)
+    labels = data.tensors[1].clone()
+    labels[5] = NO_LABEL
+    train = DataLoader(TensorDataset(data.tensors[0], labels), batch_size=8)
+    heldout = DataLoader(blobs(20, seed=2), batch_size=8)
+    with pytest.raises(InputError, match="'no label'"):
+        _lineage((train, heldout, None), tmp_path / "run", _pool_loader())
+    assert not (tmp_path / "run").exists()
+
+
+# -- the engine, end to end ----------------------------------------------------------------------
+
+
+@pytest.mark.slow
+def test_epochs_cover_labelled_and_admitted_samples_and_records(loaders, tmp_path):
+    pool = _pool_loader(n=60, pairs=True)
+    seen: list[tuple[int, int]] = []
+    rule = Admission(select="top", count=20, keep="stay", audit=True)
+    result = _hook(_lineage(loaders, tmp_path / "run", pool, admission=rule), seen=seen)
+    records = result.records
+    assert [r["generation"] for r in records] == [0, 1, 2]
+    # generation 0 on labels only; then each labelled sample and each admitted slot once
+    assert seen[0] == (96, 0)
+    assert seen[1] == (96 + 20, 20) and seen[2] == (96 + 40, 40)
+    figures = [r["pool"] for r in records]
+    assert [f["admitted"] for f in figures] == [20, 40, 60]
+    assert [f["new"] for f in figures] == [20, 20, 20]
+    assert [f["trained_on"] for f in figures] == [0, 20, 40]
+    assert figures[0]["agreement"] is None and 0 <= figures[1]["agreement"] <= 1
+    assert sum(figures[0]["per_class"]) == 20 and figures[0]["share"] == pytest.approx(20 / 60)
+    # audit: against the pool's true labels, recomputed here from the written files
+    run = tmp_path / "run"
+    truth = pool.dataset.tensors[1].numpy()
+    with np.load(run / "gen1" / "pool" / "admitted.npz") as admitted:
+        index, label = admitted["index"], admitted["label"]
+    assert figures[1]["audit_accuracy"] == pytest.approx(float((label == truth[index]).mean()))
+    # stay: the first 20 kept their labels from generation 0
+    with np.load(run / "gen0" / "pool" / "admitted.npz") as first:
+        kept = np.isin(index, first["index"])
+        assert np.array_equal(label[kept], first["label"])
+    # the settings record the pool; a changed pool is refused on resume
+    saved = json.loads((run / "lineage.json").read_text())["settings"]["pool"]
+    assert saved["size"] == 60 and saved["select"] == "top"
+    with pytest.raises(InputError, match="pool"):
+        _lineage(loaders, run, _pool_loader(n=60, seed=9, pairs=True), admission=rule)
+    with pytest.raises(InputError, match="pool"):
+        _lineage(loaders, run, None)
+
+
+def _logistic(**kwargs):
+    from sklearn.linear_model import LogisticRegression
+
+    return LogisticRegression(C=1.0, tol=1e-10, max_iter=10_000, **kwargs)
+
+
+def _digits_split():
+    from sklearn.datasets import load_digits
+
+    x, y = load_digits(return_X_y=True)
+    keep = y < 4
+    x, y = (x[keep] / 16.0).astype(np.float32), y[keep]
+    order = np.random.default_rng(0).permutation(len(x))
+    x, y = x[order], y[order]
+    first = np.concatenate([np.flatnonzero(y == c)[:4] for c in range(4)])  # 16 labels
+    rest = np.setdiff1d(np.arange(len(x)), first)
+    return x[first], y[first], x[rest[:300]], x[rest[300:400]], y[rest[300:400]]
+
+
+def _sklearn_hook(lineage):
+    """Hook mode: fit scikit-learn's LogisticRegression on gen.loader's batches (pool rows take
+    their hard pseudo-label), wrap its coefficients in an nn.Linear."""
+    for gen in lineage:
+        xs, ys = [], []
+        for inputs, labels, targets in gen.loader:
+            labels = labels.clone()
+            if targets is not None:
+                pool = labels == NO_LABEL
+                labels[pool] = targets.argmax(dim=1)[pool]
+            xs.append(inputs)
+            ys.append(labels)
+        fitted = _logistic().fit(torch.cat(xs).numpy(), torch.cat(ys).numpy())
+        model = nn.Linear(64, 4)
+        with torch.no_grad():
+            model.weight.copy_(torch.from_numpy(fitted.coef_))
+            model.bias.copy_(torch.from_numpy(fitted.intercept_))
+        gen.finish(model)
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("criterion", ["threshold", "k_best"])
+def test_classic_form_admits_what_scikit_learns_self_training_records(tmp_path, criterion):
+    """scikit-learn's ``SelfTrainingClassifier`` (sklearn/semi_supervised/_self_training.py):
+    iteration n fits on the samples labelled so far, then labels the remaining ones whose top
+    probability is ``> threshold`` (or the ``k_best`` most confident) and records n in
+    ``labeled_iter_``; they keep that label. Here generation g is its iteration g + 1: the
+    samples generation g admits are those with ``labeled_iter_ == g + 1``, and the last
+    generation is its final estimator (same predictions). Both fit the same float32 arrays in
+    the same order (labelled samples, then admitted pool samples by index: a sequential
+    training loader), and no two confidences tie at the cut."""
+    from sklearn.semi_supervised import SelfTrainingClassifier
+
+    x_lab, y_lab, x_pool, x_test, _ = _digits_split()
+    rounds = 3
+    rule = {"threshold": {"threshold": 0.8}, "k_best": {"k_best": 40}}[criterion]
+    reference = SelfTrainingClassifier(
+        _logistic(), criterion=criterion, max_iter=rounds, **rule
+    )
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        reference.fit(
+            np.concatenate([x_lab, x_pool]), np.concatenate([y_lab, np.full(len(x_pool), -1)])
+        )
+    assert reference.termination_condition_ == "max_iter"
+    admission = (
+        Admission(select="threshold", threshold=0.8, keep="stay", pseudo="hard")
+        if criterion == "threshold"
+        else Admission(select="top", count=40, keep="stay", pseudo="hard")
+    )
+    train = DataLoader(TensorDataset(torch.from_numpy(x_lab), torch.from_numpy(y_lab)), 8)
+    heldout = DataLoader(TensorDataset(torch.from_numpy(x_test), torch.zeros(100).long()), 50)
+    lineage = filial.Lineage(
+        lambda: nn.Linear(64, 4),
+        train,
+        heldout,
+        run_dir=tmp_path / "run",
+        unlabeled_loader=DataLoader(Inputs(torch.from_numpy(x_pool)), batch_size=64),
+        admission=admission,
+        max_generations=rounds,
+        patience=rounds + 1,
+        progress=False,
+        tensorboard=False,
+    )
+    _sklearn_hook(lineage)
+    records = lineage.result.records
+    assert len(records) == rounds + 1
+    in_pool = reference.labeled_iter_[len(x_lab) :]
+    earlier = np.zeros(0, dtype=np.int64)
+    for g in range(rounds):
+        with np.load(tmp_path / "run" / f"gen{g}" / "pool" / "admitted.npz") as admitted:
+            index, label = admitted["index"], admitted["label"]
+        new = np.setdiff1d(index, earlier)
+        assert new.tolist() == np.flatnonzero(in_pool == g + 1).tolist(), g
+        assert np.array_equal(label, reference.transduction_[len(x_lab) + index])
+        earlier = index
+    last = lineage.result.checkpoint(rounds)
+    model = nn.Linear(64, 4)
+    model.load_state_dict(torch.load(last, weights_only=True))
+    ours = model(torch.from_numpy(x_test)).argmax(dim=1).numpy()
+    assert np.array_equal(ours, reference.predict(x_test))
