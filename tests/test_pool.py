@@ -6,6 +6,7 @@ from __future__ import annotations
 
 import json
 import warnings
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -19,6 +20,8 @@ import filial
 from filial.errors import InputError
 from filial.losses import StudentLoss, TopKTargets, soft_cross_entropy
 from filial.pool import NO_LABEL, Admission, PoolLoss, balanced, select
+
+ROOT = Path(__file__).resolve().parents[1]
 
 
 class Inputs(Dataset):
@@ -156,6 +159,22 @@ def test_pool_loss_against_torch_functional():
     hard_loss = PoolLoss(base, Admission(pseudo="hard"))
     top = hard_loss(outputs, unlabelled, TopKTargets(values, classes))
     assert torch.allclose(top, pseudo.mean(), atol=1e-6)
+
+
+def test_the_report_says_when_generation_0_was_kept():
+    from filial.pool import pool_lines
+
+    figures = {
+        "size": 10, "trained_on": 0, "admitted": 4, "share": 0.4, "new": 4,
+        "mean_confidence": 0.9, "agreement": None, "audit_accuracy": 0.75,
+        "audit_pool_accuracy": 0.6,
+    }
+    records = [{"generation": 0, "pool": figures}, {"generation": 1, "pool": figures}]
+    text = "\n".join(pool_lines(records, best=0))
+    assert "unlabelled pool (10 samples)" in text and "0.750" in text
+    assert "generation 0 (the labelled data alone) was kept: self-training" in text
+    assert "did not help" not in "\n".join(pool_lines(records, best=1))
+    assert pool_lines([{"generation": 0}], best=0) == []
 
 
 # -- refusals ------------------------------------------------------------------------------------
@@ -331,3 +350,69 @@ def test_classic_form_admits_what_scikit_learns_self_training_records(tmp_path, 
     model.load_state_dict(torch.load(last, weights_only=True))
     ours = model(torch.from_numpy(x_test)).argmax(dim=1).numpy()
     assert np.array_equal(ours, reference.predict(x_test))
+
+
+# -- recipes -------------------------------------------------------------------------------------
+
+
+def _run_recipe(name, run_dir, overrides, capsys):
+    from filial import cli
+
+    argv = ["run", str(ROOT / "recipes" / name), "--run-dir", str(run_dir)]
+    for key, value in overrides.items():
+        argv += ["--set", f"{key}={value}"]
+    assert cli.main(argv) == 0, capsys.readouterr().err
+    return capsys.readouterr().out
+
+
+@pytest.mark.slow
+def test_digits_unlabeled_recipe_runs(tmp_path, capsys):
+    overrides = {
+        "data.labels": 40,
+        "data.train_size": 240,
+        "data.heldout_size": 100,
+        "training.epochs": 3,
+        "generations.max_generations": 1,
+        "run.seeds": "[0]",
+        "pool.select": "top",
+        "pool.count": 50,
+    }
+    out = _run_recipe("digits_unlabeled.toml", tmp_path / "run", overrides, capsys)
+    state = json.loads((tmp_path / "run" / "seed0" / "lineage.json").read_text())
+    assert state["settings"]["pool"]["size"] == 200 and state["settings"]["pool"]["audit"]
+    figures = [r["pool"] for r in state["records"]]
+    assert figures[1]["trained_on"] == figures[0]["admitted"] == 50
+    assert figures[0]["audit_accuracy"] is not None
+    assert "unlabelled pool (200 samples)" in out
+
+
+@pytest.mark.slow
+def test_cifar10_unlabeled_recipe_runs_over_fake_data(tmp_path, capsys, monkeypatch):
+    """As tests/test_vision.py runs the CIFAR recipes: FakeData, the real transforms and the
+    shallowest ResNet; FakeData's random labels may collapse generation 0, a stop turned off."""
+    from filial.stopping import StopRule
+
+    monkeypatch.setattr(StopRule, "collapsed", lambda self, record, first: None)
+    overrides = {
+        "data.source": "fake",
+        "data.labels": 32,
+        "data.pool_size": 32,
+        "data.heldout_size": 16,
+        "data.test_subset": 16,
+        "data.batch_size": 16,
+        "data.workers": 0,
+        "model.depth": 8,
+        "training.epochs": 1,
+        "generations.max_generations": 1,
+        "generations.views": 2,
+        "run.baseline": "none",
+        "pool.threshold": 0.0,
+        "pool.select": "everything",
+    }
+    _run_recipe("cifar10_unlabeled.toml", tmp_path / "run", overrides, capsys)
+    state = json.loads((tmp_path / "run" / "seed0" / "lineage.json").read_text())
+    assert [r["mode"] for r in state["records"]] == ["labels", "cached"]
+    assert state["settings"]["pool"]["replayed"]  # the pool augments: replayed views
+    assert state["records"][1]["pool"]["trained_on"] == 32
+    store = filial.TargetStore(tmp_path / "run" / "seed0" / "gen1" / "pool")
+    assert store.shape == (32, 2, 10)

@@ -53,6 +53,7 @@ from .errors import InputError, LockedError, Problems
 from .fit import EpochFit, fit_epochs
 from .lineage import Lineage
 from .observers import TensorBoardRuns
+from .pool import Admission
 from .report import format_report, summarize
 from .rundir import (
     RECIPE_FILE,
@@ -78,6 +79,39 @@ class Plan:
     heldout: DataLoader
     test: DataLoader | None
     model_fn: Any
+    pool: DataLoader | None = None  # the data factory's unlabelled pool (recipe [pool])
+
+
+def _pool_of(value: Any, spec: str) -> tuple[Any, DataLoader | None]:
+    """The data factory's value without its pool loader (dict key ``unlabeled``, or the
+    fourth of ``(train, heldout, test, unlabeled)``), and that loader."""
+    pool = None
+    if isinstance(value, dict) and "unlabeled" in value:
+        value = dict(value)
+        pool = value.pop("unlabeled")
+    elif isinstance(value, (tuple, list)) and len(value) == 4:
+        value, pool = tuple(value[:3]), value[3]
+    if pool is not None and not isinstance(pool, DataLoader):
+        raise recipes.RecipeError(
+            f"data.factory {spec!r} returned an unlabeled pool that is a "
+            f"{type(pool).__name__}, not a DataLoader"
+        )
+    return value, pool
+
+
+def pool_admission(recipe: recipes.Recipe) -> Admission:
+    """The recipe's ``[pool]`` as :class:`~filial.pool.Admission`."""
+    p = recipe["pool"]
+    return Admission(
+        select=p["select"],
+        threshold=p["threshold"] or None,
+        count=p["count"] or None,
+        step=p["step"],
+        keep=p["keep"],
+        pseudo=p["pseudo"],
+        weight=p["weight"],
+        audit=p["audit"],
+    )
 
 
 def _loaders(value: Any, spec: str) -> tuple[DataLoader, DataLoader, DataLoader | None]:
@@ -116,6 +150,7 @@ def plan(recipe_path: str, overrides: Sequence[str], run_dir: str | None) -> Pla
     spec = recipe["data"]["factory"]
     # Whatever a factory raises names its recipe key (exit 2); a bug keeps its traceback.
     loaders = recipes.call_factory("data", spec, data_factory, data_kwargs)
+    loaders, pool = _pool_of(loaders, spec)
     train, heldout, test = _loaders(loaders, spec)
     model_fn = functools.partial(model_factory, **model_kwargs)
     probe = recipes.call_factory("model", recipe["model"]["factory"], model_fn)
@@ -131,7 +166,11 @@ def plan(recipe_path: str, overrides: Sequence[str], run_dir: str | None) -> Pla
         raise recipes.RecipeError(f"[generations]: {found}")
     recipes.training_device(recipe["training"])  # a wrong device is a recipe error, here
     baseline_plan(recipe)
-    return Plan(recipe, train, heldout, test, model_fn)
+    if pool is not None:
+        wrong = pool_admission(recipe).problems()
+        if wrong:
+            raise recipes.RecipeError("[pool]: " + "; ".join(str(p) for p in wrong))
+    return Plan(recipe, train, heldout, test, model_fn, pool)
 
 
 def baseline_plan(recipe: recipes.Recipe) -> list[BaselineSpec]:
@@ -226,6 +265,8 @@ def _lineage(
         tensorboard=False,
         observers=[tensorboard],
         fresh=fresh,
+        unlabeled_loader=p.pool,
+        admission=pool_admission(p.recipe) if p.pool is not None else None,
         **generation_settings(p.recipe, seed),
     )
 

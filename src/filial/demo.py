@@ -154,14 +154,19 @@ class MLP:
     :data:`MAX_LAYERS` hidden layers and :data:`filial._checks.MAX_PARAMETERS` parameters.
     """
 
-    def __init__(self, hidden: Sequence[int] = (256, 256), inputs: int = 64) -> None:
+    def __init__(
+        self, hidden: Sequence[int] = (256, 256), inputs: int = 64, dropout: float = 0.0
+    ) -> None:
         self.hidden, self.inputs = _check_mlp(hidden, inputs, prefix="")
+        self.dropout = _checks.fraction(dropout, "dropout")
 
     def __call__(self) -> nn.Module:
         layers: list[nn.Module] = []
         width = self.inputs
         for h in self.hidden:
             layers += [nn.Linear(width, h), nn.ReLU()]
+            if self.dropout:  # a noised student (Noisy Student, Xie et al. 2020)
+                layers.append(nn.Dropout(self.dropout))
             width = h
         layers.append(nn.Linear(width, CLASSES))
         return nn.Sequential(*layers)
@@ -211,10 +216,58 @@ def mail_room_loaders(
     return room.loaders(batch_size=batch_size, seed=split_seed)
 
 
-def mlp(hidden: Sequence[int] = (256, 256), inputs: int = 64) -> nn.Module:
-    """Recipe model factory: a fresh MLP for flat digits (``model.hidden`` widths)."""
+def mlp(hidden: Sequence[int] = (256, 256), inputs: int = 64, dropout: float = 0.0) -> nn.Module:
+    """Recipe model factory: a fresh MLP for flat digits (``model.hidden`` widths, dropout
+    after every hidden layer when ``model.dropout`` > 0)."""
     hidden, inputs = _check_mlp(hidden, inputs, prefix="model.")
-    return MLP(hidden, inputs)()
+    return MLP(hidden, inputs, _checks.fraction(dropout, "model.dropout"))()
+
+
+def mail_room_unlabeled_loaders(
+    labels: int = 100,
+    noise: float = 0.0,
+    split_seed: int = 0,
+    batch_size: int = 32,
+    train_size: int = 1000,
+    heldout_size: int = 300,
+    audit: bool = True,
+) -> dict[str, DataLoader]:
+    """Recipe data factory: the mail room where most envelopes arrive without a label.
+
+    The first ``labels`` envelopes of the training split keep their (crowd-sourced, ``noise``)
+    labels; the rest of the split is the unlabelled pool, a dataset of ``(image, true digit)``
+    pairs whose digits only the audit figure reads (``pool.audit = true``; with ``audit =
+    false`` the pool holds images alone). Keys: train, heldout, test, unlabeled.
+    """
+    _check_room(noise, split_seed, train_size, heldout_size, False, prefix="data.")
+    _checks.integer(labels, "data.labels", 1, train_size - 1, "the pool keeps at least one")
+    _checks.integer(batch_size, "data.batch_size", 1, DIGITS)
+    _checks.flag(audit, "data.audit")
+    room = mail_room(noise, split_seed, train_size, heldout_size)
+    x, y = room.train.tensors
+    truth = room.clean_train_labels
+    generator = torch.Generator().manual_seed(split_seed)
+    train = TensorDataset(x[:labels], y[:labels])
+    pool: Any = TensorDataset(x[labels:], truth[labels:]) if audit else _Images(x[labels:])
+    return {
+        "train": DataLoader(train, batch_size=batch_size, shuffle=True, generator=generator),
+        "heldout": DataLoader(room.heldout, batch_size=256),
+        "test": DataLoader(room.test, batch_size=256),
+        "unlabeled": DataLoader(pool, batch_size=256),
+    }
+
+
+class _Images(torch.utils.data.Dataset):
+    """Images alone (a pool without labels)."""
+
+    def __init__(self, images: torch.Tensor) -> None:
+        self.images = images
+
+    def __len__(self) -> int:
+        return len(self.images)
+
+    def __getitem__(self, index: int) -> torch.Tensor:
+        return self.images[index]
 
 
 def cnn(channels: Sequence[int] = (16, 32)) -> nn.Module:

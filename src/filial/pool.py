@@ -918,3 +918,42 @@ def iter_pool_figures(records: Sequence[Any]) -> Iterator[tuple[int, dict[str, A
         entry = record.get("pool")
         if isinstance(entry, dict):
             yield int(record["generation"]), entry
+
+
+def _cell(value: Any, width: int, digits: int = 4) -> str:
+    if value is None:
+        return f"{'-':>{width}}"
+    if isinstance(value, float):
+        return f"{value:>{width}.{digits}f}"
+    return f"{value:>{width}}"
+
+
+def pool_lines(records: Sequence[Any], best: int | None) -> list[str]:
+    """The report's lines about the pool (none for a run without one): per generation what
+    it trained on and what its pass admitted for the next student, and a plain sentence when
+    generation 0 (the labelled data alone) was kept."""
+    rows = list(iter_pool_figures(records))
+    if not rows:
+        return []
+    size = rows[0][1]["size"]
+    out = [
+        f"unlabelled pool ({size} samples): 'trained on' = pool slots the generation learnt "
+        "from; the rest = its pass over the pool, admitted for the next student",
+        f"{'gen':>4} {'trained on':>10} {'admitted':>8} {'share':>6} {'new':>6} "
+        f"{'confidence':>10} {'agree':>6} {'audit':>6} {'pool audit':>10}",
+    ]
+    for generation, f in rows:
+        out.append(
+            f"{generation:>4} {_cell(f['trained_on'], 10)} {_cell(f['admitted'], 8)} "
+            f"{_cell(f['share'], 6, 3)} {_cell(f['new'], 6)} "
+            f"{_cell(f['mean_confidence'], 10)} {_cell(f['agreement'], 6, 3)} "
+            f"{_cell(f['audit_accuracy'], 6, 3)} {_cell(f['audit_pool_accuracy'], 10, 3)}"
+        )
+    if best == 0:
+        out.append(
+            "generation 0 (the labelled data alone) was kept: self-training on the unlabelled "
+            "pool did not help on the held-out data"
+        )
+    elif best is not None:
+        out.append(f"generation {best}, trained with pseudo-labelled pool samples, was kept")
+    return out

@@ -55,6 +55,9 @@ from typing import TYPE_CHECKING, Any, TypeVar
 from .baselines import DEFAULT_LABEL_SMOOTHING, baseline_names
 from .errors import InputError
 from .losses import LOSS_KINDS
+from .pool import KEEPS as POOL_KEEPS
+from .pool import PSEUDO as POOL_PSEUDO
+from .pool import SELECTIONS as POOL_SELECTIONS
 from .store import STORE_DTYPES
 
 if TYPE_CHECKING:
@@ -181,11 +184,24 @@ _SCHEMA: dict[str, dict[str, Field]] = {
         "top_k": Field("int", 0, minimum=0, help="0: every output; k: the k largest (ce only)"),
         "teacher": Field("choice", "cached", ("cached", "online")),
     },
+    # The unlabelled pool (filial.pool.Admission), used when the data factory returns one.
+    "pool": {
+        "select": Field("choice", "threshold", POOL_SELECTIONS),
+        "threshold": Field(
+            "float", 0.9, minimum=0.0, help="top probability at T=1; 0: none (per_class)"
+        ),
+        "count": Field("int", 0, minimum=0, help="top: k most confident; per_class: n a class"),
+        "step": Field("float", 0.2, minimum=0.0, help="growing: share added per generation"),
+        "keep": Field("choice", "relabel", POOL_KEEPS),
+        "pseudo": Field("choice", "soft", POOL_PSEUDO),
+        "weight": Field("float", 1.0, minimum=0.0),
+        "audit": Field("bool", False, help="the pool's labels are for the audit figure only"),
+    },
 }
 _FACTORY_SECTIONS = ("data", "model")
 BASELINE_KEYS = ("baseline", "baseline_every", "label_smoothing")
 _NAME = re.compile(r"[A-Za-z0-9][A-Za-z0-9._-]*")
-SECTIONS = ("run", "data", "model", "training", "generations")
+SECTIONS = ("run", "data", "model", "training", "generations", "pool")
 
 
 def _describe(value: Any) -> str:
@@ -503,6 +519,10 @@ class Recipe:
         # again, the others are kept, and the lineages are not touched.
         for key in BASELINE_KEYS:
             values["run"].pop(key, None)
+        # Recipes saved before the pool existed have no [pool]: its defaults compare as absent.
+        defaults = {key: field.default for key, field in _SCHEMA["pool"].items()}
+        if values.get("pool", defaults) == defaults:
+            values.pop("pool", None)
         return values
 
     def baselines(self) -> dict[str, Any]:
@@ -519,7 +539,7 @@ class Recipe:
         lines = [MARKER, ""]
         for section in SECTIONS:
             lines.append(f"[{section}]")
-            for key, value in self.values[section].items():
+            for key, value in self.values.get(section, {}).items():
                 lines.append(f"{_toml_key(key)} = {_toml_value(value)}")
             lines.append("")
         return "\n".join(lines)

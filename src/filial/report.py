@@ -22,6 +22,7 @@ from .baselines import BASELINES, EARLY_STOPPED
 from .crossfit import cross_fit, halves
 from .evidence import Arm, across_seeds, closest, compare
 from .metrics import default_metric, sample_scores
+from .pool import pool_lines
 from .reading import (
     RunFileError,
     check_directory,
@@ -573,6 +574,7 @@ def _matched_shows(x: dict[str, Any], record: Mapping[str, Any]) -> str:
 def _lineage_lines(x: dict[str, Any]) -> list[str]:
     out = ["", f"seed {x['seed']} ({x['targets']} targets, {x['lineage_dir']})"]
     out.append(generation_table(x["records"], x["best"], x["targets"]))
+    out.extend(pool_lines(x["records"], x["best"]))
     out.append(f"stopped: {x['stop_in_words']}")
     best = x["best"]
     if best is not None:

@@ -309,3 +309,62 @@ def cifar_loaders(
         DataLoader(Split(train_base, heldout, plain), **common),
         DataLoader(Split(test_base, test, plain), **common),
     )
+
+
+def cifar_unlabeled_loaders(
+    dataset: str = "cifar10",
+    root: str = "data",
+    source: str = "folder",
+    labels: int = 4000,
+    pool_size: int = 0,
+    heldout_size: int = 5000,
+    test_subset: int = 0,
+    split_seed: int = 0,
+    batch_size: int = 128,
+    workers: int = 2,
+) -> dict[str, DataLoader]:
+    """Recipe data factory: CIFAR with few labels (the common semi-supervised protocol: 4,000
+    labelled CIFAR-10 training images) and the other training images as an unlabelled pool.
+
+    ``heldout_size`` images are split off the training split as in :func:`cifar_loaders`;
+    of the rest (a permutation under ``split_seed``) the first ``labels`` keep their labels
+    and the others (the first ``pool_size`` of them when > 0) form the pool: ``(image, true
+    label)`` pairs, augmented as the training images are, whose labels only the audit figure
+    reads (recipe ``pool.audit``). Keys: train, heldout, test, unlabeled.
+    """
+    _checks.choice(dataset, "data.dataset", tuple(CLASSES))
+    _checks.choice(source, "data.source", ("folder", "fake"))
+    heldout_size = _checks.integer(heldout_size, "data.heldout_size", 1, TRAIN_SIZE - 2)
+    rest = TRAIN_SIZE - heldout_size
+    labels = _checks.integer(labels, "data.labels", 1, rest - 1, "the pool keeps at least one")
+    pool_size = _checks.integer(pool_size, "data.pool_size", 0, rest - labels, "0: all the rest")
+    _checks.integer(test_subset, "data.test_subset", 0, TEST_SIZE)
+    _checks.integer(split_seed, "data.split_seed", 0, _checks.MAX_SEED)
+    _checks.integer(batch_size, "data.batch_size", 1, TRAIN_SIZE)
+    _checks.integer(workers, "data.workers", 0, max_workers())
+    if not isinstance(root, (str, os.PathLike)) or not str(root):
+        raise InputError(f"data.root should be a folder name, but got data.root={root!r}")
+    folder = Path(root).expanduser().absolute()
+    train_base, test_base = (
+        _fake_dataset(dataset) if source == "fake" else _folder_dataset(dataset, folder)
+    )
+    order = np.random.default_rng(split_seed).permutation(len(train_base))
+    heldout = np.sort(order[:heldout_size])
+    labelled = np.sort(order[heldout_size : heldout_size + labels])
+    pool = np.sort(order[heldout_size + labels :])
+    if pool_size:
+        pool = pool[:pool_size]
+    test = np.arange(min(test_subset, len(test_base)) if test_subset else len(test_base))
+    augment, plain = transforms(dataset, train=True), transforms(dataset, train=False)
+    common: dict[str, Any] = {"batch_size": batch_size, "num_workers": workers}
+    return {
+        "train": DataLoader(
+            Split(train_base, labelled, augment),
+            shuffle=True,
+            generator=torch.Generator().manual_seed(split_seed),
+            **common,
+        ),
+        "heldout": DataLoader(Split(train_base, heldout, plain), **common),
+        "test": DataLoader(Split(test_base, test, plain), **common),
+        "unlabeled": DataLoader(Split(train_base, pool, augment), **common),
+    }
