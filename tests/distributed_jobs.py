@@ -377,6 +377,42 @@ def collectives_job(rank: int, world: int, rendezvous: str, root: str) -> None:
     dist.destroy_process_group()
 
 
+def pool_job(rank: int, world: int, rendezvous: str, root: str) -> None:
+    """A lineage with an unlabelled pool (the mail room's test split as the pool, its labels
+    for the audit only), hook mode under DDP; each rank reports its records and the rows (all,
+    pool) of its shard in the first epoch of every generation."""
+    start(rank, world, rendezvous)
+    train, heldout, _, _ = digits(rank, world)
+    room = mail_room(noise=0.3, seed=0, train_size=TRAIN_SIZE, heldout_size=HELDOUT_SIZE)
+    rule = filial.Admission(select="top", count=100, keep="stay", audit=True)
+    lin = lineage(
+        Path(root) / "pool",
+        train,
+        heldout,
+        None,
+        unlabeled_loader=DataLoader(room.test, batch_size=64),
+        admission=rule,
+    )
+    rows = []
+    for gen in lin:
+        model = DistributedDataParallel(gen.model)
+        optimizer = torch.optim.SGD(model.parameters(), lr=0.1, momentum=0.9)
+        for epoch in range(2):
+            seen = [0, 0]
+            for inputs, labels, targets in gen.loader:
+                loss = gen.loss(model(inputs), labels, targets)
+                optimizer.zero_grad()
+                loss.backward()
+                optimizer.step()
+                seen = [seen[0] + len(labels), seen[1] + int((labels == -1).sum())]
+            if epoch == 0:
+                rows.append(seen)
+        gen.finish(model)
+    write(Path(root) / "out", rank, {"records": lin.result.records, "rows": rows})
+    lin.close()
+    dist.destroy_process_group()
+
+
 def run(job, root: Path, world: int = 2) -> list[dict[str, Any]]:
     """Run ``job`` on ``world`` spawned ranks; the ranks' reports, in rank order."""
     (root / "out").mkdir(parents=True, exist_ok=True)

@@ -32,6 +32,7 @@ from distributed_jobs import (
     Augmented,
     collectives_job,
     lineage_job,
+    pool_job,
     run,
 )
 from sklearn.metrics import accuracy_score
@@ -546,3 +547,34 @@ def test_filial_run_under_torchrun_runs_seeds_and_the_matched_baseline(tmp_path)
     assert again.stderr.count("is already finished") == 2 and "generation 0:" not in again.stderr
     assert {p: p.read_bytes() for p in run_dir.rglob("student.pt")} == checkpoints
     assert not list(run_dir.rglob(".*.tmp-*"))
+
+
+@pytest.mark.slow
+def test_two_ranks_share_the_unlabelled_pool(tmp_path):
+    """The pool under two gloo ranks: the same records on both, each student epoch split
+    between them by DistributedSampler (ceil((labelled + admitted) / 2) rows a rank, its
+    padding included), and the sharded pass over the pool equal to one process's."""
+    from filial.lineage import load_generation
+    from filial.pool import Admission, pool_data, pool_pass
+    from filial.teacher import StoreSpec
+
+    zero, one = run(pool_job, tmp_path)
+    assert _same(zero["records"], one["records"])
+    state = json.loads((tmp_path / "pool" / "lineage.json").read_text(encoding="utf-8"))
+    assert _same(state["records"], zero["records"])
+    records = zero["records"]
+    for g, (a, b) in enumerate(zip(zero["rows"], one["rows"], strict=True)):
+        admitted = 0 if g == 0 else records[g - 1]["pool"]["admitted"]
+        assert a[0] == b[0] == -(-(TRAIN_SIZE + admitted) // 2)
+        assert admitted <= a[1] + b[1] <= admitted + 1
+    assert [r["pool"]["admitted"] for r in records] == [100 * (g + 1) for g in range(len(records))]
+    # generation 0's checkpoint over the pool in one process: the same scores
+    room = mail_room(noise=0.3, seed=0, train_size=TRAIN_SIZE, heldout_size=299)
+    model = load_generation(MLP(HIDDEN), tmp_path / "pool", records[0])
+    data = pool_data(DataLoader(room.test, batch_size=64), Admission(audit=True), None, 3)
+    passed = pool_pass(model, data, 0, StoreSpec("float32", 1, None, "x"), tmp_path / "alone")
+    assert passed is not None
+    found = np.load(tmp_path / "pool" / "gen0" / "pool" / "scores.npy")
+    np.testing.assert_allclose(found["confidence"], passed.scores.confidence, rtol=1e-5)
+    assert np.array_equal(found["predicted"], passed.scores.predicted)
+    passed.discard()

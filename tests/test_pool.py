@@ -234,13 +234,13 @@ def test_epochs_cover_labelled_and_admitted_samples_and_records(loaders, tmp_pat
     # audit: against the pool's true labels, recomputed here from the written files
     run = tmp_path / "run"
     truth = pool.dataset.tensors[1].numpy()
-    with np.load(run / "gen1" / "pool" / "admitted.npz") as admitted:
-        index, label = admitted["index"], admitted["label"]
+    admitted = np.load(run / "gen1" / "pool" / "admitted.npy")
+    index, label = admitted["index"], admitted["label"]
     assert figures[1]["audit_accuracy"] == pytest.approx(float((label == truth[index]).mean()))
     # stay: the first 20 kept their labels from generation 0
-    with np.load(run / "gen0" / "pool" / "admitted.npz") as first:
-        kept = np.isin(index, first["index"])
-        assert np.array_equal(label[kept], first["label"])
+    first = np.load(run / "gen0" / "pool" / "admitted.npy")
+    kept = np.isin(index, first["index"])
+    assert np.array_equal(label[kept], first["label"])
     # the settings record the pool; a changed pool is refused on resume
     saved = json.loads((run / "lineage.json").read_text())["settings"]["pool"]
     assert saved["size"] == 60 and saved["select"] == "top"
@@ -339,8 +339,8 @@ def test_classic_form_admits_what_scikit_learns_self_training_records(tmp_path, 
     in_pool = reference.labeled_iter_[len(x_lab) :]
     earlier = np.zeros(0, dtype=np.int64)
     for g in range(rounds):
-        with np.load(tmp_path / "run" / f"gen{g}" / "pool" / "admitted.npz") as admitted:
-            index, label = admitted["index"], admitted["label"]
+        admitted = np.load(tmp_path / "run" / f"gen{g}" / "pool" / "admitted.npy")
+        index, label = admitted["index"], admitted["label"]
         new = np.setdiff1d(index, earlier)
         assert new.tolist() == np.flatnonzero(in_pool == g + 1).tolist(), g
         assert np.array_equal(label, reference.transduction_[len(x_lab) + index])
@@ -416,3 +416,89 @@ def test_cifar10_unlabeled_recipe_runs_over_fake_data(tmp_path, capsys, monkeypa
     assert state["records"][1]["pool"]["trained_on"] == 32
     store = filial.TargetStore(tmp_path / "run" / "seed0" / "gen1" / "pool")
     assert store.shape == (32, 2, 10)
+
+
+def test_tensorboard_shows_the_pool_figures(tmp_path):
+    """Read back with TensorBoard's own EventAccumulator."""
+    from tensorboard.backend.event_processing.event_accumulator import EventAccumulator
+
+    from filial.tb import TensorBoardLog
+
+    pool = {"trained_on": 0, "admitted": 7, "share": 0.7, "new": 7, "mean_confidence": 0.8,
+            "agreement": None, "audit_accuracy": 0.5, "audit_pool_accuracy": 0.4,
+            "per_class": [3, 4], "size": 10}
+    record = {"generation": 0, "heldout": 0.5, "epochs": [], "pool": pool}
+    log = TensorBoardLog(tmp_path / "tb")
+    log.generation(record, record, [record])
+    log.close()
+    found = EventAccumulator(str(tmp_path / "tb" / "gen0"))
+    found.Reload()
+    tags = found.Tags()["scalars"]
+    assert found.Scalars("pool/admitted")[0].value == 7
+    assert found.Scalars("pool/class/1")[0].value == 4
+    assert "pool/agreement" not in tags  # None: generation 0 has no earlier pseudo-labels
+
+
+# -- crashes and resume (the style of tests/test_faults.py: a real SIGKILL, the same command
+# run again) --------------------------------------------------------------------------------
+
+CRASH = {
+    "data.labels": 40,
+    "data.train_size": 240,
+    "data.heldout_size": 100,
+    "data.batch_size": 32,
+    "training.epochs": 2,
+    "generations.max_generations": 1,
+    "generations.patience": 5,
+    "run.seeds": "[0]",
+    "pool.select": "top",
+    "pool.count": 30,
+    "pool.keep": "stay",
+}
+POOL_KILLS = {
+    # the training pass has 2 batches of 32 over the 40 labels; the third is the pool's
+    "teacher:gen1#3": "during generation 1's pass over the pool",
+}
+
+
+def _cli(run_dir, fault=None):
+    import os
+    import subprocess
+    import sys
+
+    env = {k: v for k, v in os.environ.items() if k != "FILIAL_FAULT"}
+    if fault:
+        env["FILIAL_FAULT"] = fault
+    argv = [sys.executable, "-m", "filial", "run", str(ROOT / "recipes" / "digits_unlabeled.toml")]
+    argv += ["--run-dir", str(run_dir)]
+    for key, value in CRASH.items():
+        argv += ["--set", f"{key}={value}"]
+    return subprocess.run(argv, capture_output=True, text=True, env=env, timeout=300)
+
+
+def _pool_records(run_dir):
+    records = json.loads((run_dir / "seed0" / "lineage.json").read_text())["records"]
+    return [{k: v for k, v in r.items() if k != "seconds"} for r in records]
+
+
+@pytest.fixture(scope="module")
+def pool_reference(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("pool_reference")
+    done = _cli(folder / "run")
+    assert done.returncode == 0, done.stderr
+    return _pool_records(folder / "run")
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("fault", list(POOL_KILLS), ids=list(POOL_KILLS.values()))
+def test_a_kill_in_the_pool_steps_resumes_as_if_nothing_happened(fault, pool_reference, tmp_path):
+    import signal
+
+    run_dir = tmp_path / "run"
+    killed = _cli(run_dir, fault)
+    assert killed.returncode == -signal.SIGKILL, killed.stderr
+    assert [r["generation"] for r in _pool_records(run_dir)] == [0]
+    rerun = _cli(run_dir)
+    assert rerun.returncode == 0, rerun.stderr
+    assert _pool_records(run_dir) == pool_reference  # the same pool figures, files and sha256s
+    assert not list(run_dir.rglob(".*.tmp-*"))

@@ -19,8 +19,8 @@ The parts, in the order data flow through them:
   sample, never ``N x C``).
 * :func:`select` (pure numpy, rank 0): which pool samples the next student trains on.
 * :func:`conclude` (rank 0, in the generation's write step): the stay-once-admitted rows copied
-  from the previous pool store, the selection, the files ``genG/pool/scores.npz`` and
-  ``genG/pool/admitted.npz``, the published store, and the record's ``pool`` figures.
+  from the previous pool store, the selection, the files ``genG/pool/scores.npy`` and
+  ``genG/pool/admitted.npy``, the published store, and the record's ``pool`` figures.
 * :func:`mixed_loader`: ``gen.loader`` of a student, yielding mixed batches of labelled rows
   (their own labels) and admitted pool rows (label :data:`NO_LABEL`), each with its target.
 * :class:`PoolLoss`: ``gen.loss`` of a student: the lineage's loss on the labelled rows and the
@@ -80,12 +80,16 @@ from .teacher import Peak, PendingStore, StoreRows, StoreSpec
 
 NO_LABEL = -1  # the label of a pool row in gen.loader's batches
 POOL_FOLDER = "pool"  # genG/pool/: the pool's targets, scores and admitted samples
-SCORES = "scores.npz"  # the teacher's confidence and class for every pool sample
-ADMITTED = "admitted.npz"  # the samples the next student trains on, their labels, confidence
+SCORES = "scores.npy"  # the teacher's confidence and class for every pool sample
+ADMITTED = "admitted.npy"  # the samples the next student trains on, their labels, confidence
 SELECTIONS = ("everything", "threshold", "top", "per_class", "growing")
 KEEPS = ("stay", "relabel")
 PSEUDO = ("soft", "hard")
 _POOL_SEED = 0x706F6F6C  # "pool": the pool's replay seeds differ from the training set's
+# The files (numpy record arrays: np.save writes the same bytes for the same values, so their
+# sha256 in the record is reproducible, unlike a zip's time stamps)
+SCORES_DTYPE = np.dtype([("confidence", "<f4"), ("predicted", "<i8")])
+ADMITTED_DTYPE = np.dtype([("index", "<i8"), ("label", "<i8"), ("confidence", "<f4")])
 _CHUNK = 4096  # rows copied at once from the previous pool store (stay)
 
 
@@ -499,12 +503,15 @@ class Admitted:
 
     @classmethod
     def load(cls, path: Path) -> Admitted:
-        with np.load(path, allow_pickle=False) as found:
-            return cls(found["index"], found["label"], found["confidence"])
+        found = np.load(path, allow_pickle=False)
+        return cls(found["index"].copy(), found["label"].copy(), found["confidence"].copy())
 
     def write(self, path: Path) -> None:
-        arrays: Any = dataclasses.asdict(self)
-        atomic_write(path, lambda handle: np.savez(handle, **arrays))
+        table = np.zeros(len(self.index), dtype=ADMITTED_DTYPE)
+        table["index"], table["label"], table["confidence"] = (
+            self.index, self.label, self.confidence
+        )
+        atomic_write(path, lambda handle: np.save(handle, table, allow_pickle=False))
 
 
 @dataclass
@@ -599,8 +606,9 @@ def conclude(
         kept = np.intersect1d(held, np.unique(previous.admitted.index))
         if len(kept):
             _stay(passed.store, previous, kept)
-    arrays: Any = {"confidence": scores.confidence, "predicted": scores.predicted}
-    atomic_write(folder / SCORES, lambda handle: np.savez(handle, **arrays))
+    table = np.zeros(len(scores.confidence), dtype=SCORES_DTYPE)
+    table["confidence"], table["predicted"] = scores.confidence, scores.predicted
+    atomic_write(folder / SCORES, lambda handle: np.save(handle, table, allow_pickle=False))
     admitted.write(folder / ADMITTED)
     passed.store.publish(pool.fingerprint, teacher_sha256)
     figures = figures_of(pool, scores, admitted, new, classes, previous)
@@ -633,8 +641,8 @@ def figures_of(
         "trained_on": 0 if previous is None else len(previous.admitted.index),
     }
     if previous is not None:
-        with np.load(previous.folder / SCORES, allow_pickle=False) as earlier:
-            figures["agreement"] = float((earlier["predicted"] == scores.predicted).mean())
+        earlier = np.load(previous.folder / SCORES, mmap_mode="r", allow_pickle=False)
+        figures["agreement"] = float((earlier["predicted"] == scores.predicted).mean())
     if scores.truth is not None:
         truth = scores.truth
         figures["audit_pool_accuracy"] = float((scores.predicted == truth).mean())
@@ -957,3 +965,20 @@ def pool_lines(records: Sequence[Any], best: int | None) -> list[str]:
     elif best is not None:
         out.append(f"generation {best}, trained with pseudo-labelled pool samples, was kept")
     return out
+
+
+_SCALARS = (
+    "trained_on", "admitted", "share", "new", "mean_confidence", "agreement",
+    "audit_accuracy", "audit_pool_accuracy",
+)
+
+
+def pool_scalars(record: Any) -> list[tuple[str, float]]:
+    """The TensorBoard scalars of a record's ``pool`` figures (tags under ``pool/``; the
+    admitted per class as ``pool/class/C``); none without a pool."""
+    figures = record.get("pool")
+    if not isinstance(figures, dict):
+        return []
+    found = [(f"pool/{key}", float(figures[key])) for key in _SCALARS if _real(figures.get(key))]
+    found += [(f"pool/class/{c}", float(n)) for c, n in enumerate(figures.get("per_class", []))]
+    return found

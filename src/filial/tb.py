@@ -52,6 +52,7 @@ from tensorboard.plugins.hparams import api_pb2, plugin_data_pb2
 from tensorboard.plugins.hparams import metadata as hp_metadata
 from torch.utils.tensorboard import SummaryWriter
 
+from .pool import pool_scalars
 from .records import is_number
 from .stopping import StopRule
 
@@ -531,6 +532,8 @@ class TensorBoardLog:
             for key, name in _FIGURES.items():
                 if is_number(record.get(key)):
                     writer.add_scalar(f"generation/{name}", record[key], index)
+            for tag, value in pool_scalars(record):  # an unlabelled pool's figures
+                writer.add_scalar(tag, value, index)
         if records is not None:
             self._records = list(records)
         elif not self._records or self._records[-1]["generation"] != index:
