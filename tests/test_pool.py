@@ -37,9 +37,11 @@ class Inputs(Dataset):
         return self.tensor[i]
 
 
-def _pool_loader(n=60, seed=4, pairs=False, batch_size=16):
+def _pool_loader(n=60, seed=4, pairs=False, batch_size=16, single=False):
     data = blobs(n, seed=seed)
     dataset = data if pairs else Inputs(data.tensors[0])
+    if single:  # TensorDataset(inputs): 1-tuples
+        dataset = TensorDataset(data.tensors[0])
     return DataLoader(dataset, batch_size=batch_size)
 
 
@@ -198,6 +200,25 @@ def test_bad_pools_are_refused_before_anything_is_written(loaders, tmp_path):
     with pytest.raises(InputError, match="builds its sampler"):
         _lineage((own, heldout, test), run, _pool_loader())
     assert not run.exists()
+
+
+@pytest.mark.parametrize("form", ["bare", "single", "pair"])
+def test_pools_of_inputs_1_tuples_or_pairs_give_tensor_batches(loaders, tmp_path, form):
+    pool = _pool_loader(n=20, pairs=form == "pair", single=form == "single")
+    lineage = _lineage(loaders, tmp_path / "run", pool, admission=Admission(select="everything"))
+    gens = iter(lineage)
+    gen0 = next(gens)
+    gen0.finish(gen0.model)
+    gen1 = next(gens)
+    batches = list(gen1.loader)
+    inputs = torch.cat([b[0] for b in batches])
+    labels = torch.cat([b[1] for b in batches])
+    assert inputs.shape == (96 + 20, 5) and int((labels == NO_LABEL).sum()) == 20
+    # the pool rows' inputs are the pool's, each once
+    pool_rows = inputs[labels == NO_LABEL]
+    expected = blobs(20, seed=4).tensors[0]
+    assert torch.equal(pool_rows[pool_rows[:, 0].argsort()], expected[expected[:, 0].argsort()])
+    lineage.close()
 
 
 def test_a_training_label_of_minus_one_is_named(tmp_path):

@@ -184,16 +184,20 @@ def _real(value: Any) -> bool:
 
 class PoolCollate:
     """The pool loader's collate: ``(inputs, labels)`` where labels are the audit labels, or
-    :data:`NO_LABEL` for every row. ``pairs``: the pool's samples are ``(input, anything)``."""
+    :data:`NO_LABEL` for every row. ``pairs``: the pool's samples are ``(input, anything)``;
+    ``single``: 1-tuples ``(input,)`` (a ``TensorDataset`` of inputs alone)."""
 
-    def __init__(self, collate_fn: Any, pairs: bool, audit: bool) -> None:
+    def __init__(self, collate_fn: Any, pairs: bool, audit: bool, single: bool = False) -> None:
         self.collate_fn = collate_fn
         self.pairs = pairs
         self.audit = audit
+        self.single = single
 
     def __call__(self, samples: Sequence[Any]) -> tuple[Any, torch.Tensor]:
         batch = self.collate_fn(samples)
         if not self.pairs:
+            if self.single and isinstance(batch, (tuple, list)) and len(batch) == 1:
+                batch = batch[0]
             return batch, torch.full((len(samples),), NO_LABEL, dtype=torch.int64)
         inputs, second = split_pair(batch)
         if not self.audit:
@@ -267,7 +271,9 @@ def pool_data(
 ) -> PoolData:
     """Check the pool and build its :class:`PoolData` (nothing is written)."""
     size = check_pool_loader(loader)
-    pairs = _is_pair(loader.dataset[0])
+    first = loader.dataset[0]
+    pairs = _is_pair(first)
+    single = isinstance(first, (tuple, list)) and len(first) == 1
     if admission.audit and not pairs:
         raise LoaderContractError(
             "admission audit=True needs a pool of (input, true label) pairs, but the pool's "
@@ -277,7 +283,7 @@ def pool_data(
     passes = DataLoader(
         loader.dataset,
         batch_size=batch_size_of(loader),
-        collate_fn=PoolCollate(loader.collate_fn, pairs, admission.audit),
+        collate_fn=PoolCollate(loader.collate_fn, pairs, admission.audit, single),
         **settings,
     )
     probed = probe(passes)
@@ -879,7 +885,7 @@ class PoolLoss:
             by_label = F.cross_entropy(
                 outputs, known, reduction="none", label_smoothing=base.label_smoothing
             )
-            labelled = (1.0 - weight) * teacher + weight * by_label
+            labelled = by_label if weight == 1.0 else (1.0 - weight) * teacher + weight * by_label
         if self.hard:
             pool_rows = F.cross_entropy(outputs, hard_labels(targets), reduction="none")
         else:
