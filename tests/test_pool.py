@@ -221,6 +221,36 @@ def test_pools_of_inputs_1_tuples_or_pairs_give_tensor_batches(loaders, tmp_path
     lineage.close()
 
 
+def test_top_k_pool_targets_carry_the_teachers_class_first(loaders, tmp_path):
+    rule = Admission(select="everything", pseudo="hard")
+    lineage = _lineage(loaders, tmp_path / "run", _pool_loader(n=20), admission=rule, top_k=2)
+    gens = iter(lineage)
+    gen0 = next(gens)
+    gen0.finish(gen0.model)
+    gen1 = next(gens)
+    scores = np.load(tmp_path / "run" / "gen0" / "pool" / "scores.npy")
+    gen1.loader.loader.batch_sampler.sampler = torch.utils.data.SequentialSampler(range(116))
+    classes = []
+    for _, labels, targets in gen1.loader:
+        assert isinstance(targets, TopKTargets)
+        classes.append(targets.classes[labels == NO_LABEL, 0])
+    # the hard pseudo-label is the class kept first; its one-hot row's value is 1
+    assert torch.cat(classes).tolist() == scores["predicted"].tolist()
+    lineage.close()
+
+
+def test_damaged_pool_files_are_refused_on_resume(loaders, tmp_path):
+    lineage = _lineage(loaders, tmp_path / "run", _pool_loader(n=20))
+    gen0 = next(iter(lineage))
+    gen0.finish(gen0.model)
+    lineage.close()
+    (tmp_path / "run" / "gen0" / "pool" / "admitted.npy").write_bytes(b"damaged")
+    again = _lineage(loaders, tmp_path / "run", _pool_loader(n=20))
+    with pytest.raises(InputError, match="pool files of generation 0 .* damaged"):
+        next(iter(again))
+    again.close()
+
+
 def test_a_training_label_of_minus_one_is_named(tmp_path):
     data = blobs(40, seed=1)
     labels = data.tensors[1].clone()

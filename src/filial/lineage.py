@@ -133,6 +133,15 @@ class Lineage:
     Training data that augment at random (from torch's, Python's or numpy's global generators)
     are replayed for the students: each sample comes in ``views`` fixed augmented views, each with
     its own cached target, and every epoch draws one per sample (see :class:`filial.data.Replay`).
+
+    ``unlabeled_loader`` (a DataLoader over a map-style dataset of inputs, or of ``(input,
+    anything)`` pairs) is a pool for self-training: generation 0 learns from the labels alone;
+    every finished generation labels the pool, ``admission`` (a :class:`filial.Admission`:
+    which samples, stay or relabel, soft or hard pseudo-labels, their loss weight, an audit)
+    picks those the next student learns from, and ``gen.loader`` then yields mixed batches in
+    which pool rows carry the label ``-1`` (:data:`filial.pool.NO_LABEL`; a training label of
+    -1 is refused) and ``gen.loss`` handles both kinds of row. An epoch covers each labelled
+    and each admitted pool sample once. See :mod:`filial.pool`.
     """
 
     def __init__(
@@ -210,6 +219,15 @@ class Lineage:
         if pool_settings is not None:
             assert unlabeled_loader is not None
             self._pool = pool_data(unlabeled_loader, pool_settings, replay, settings.seed)
+            pool_views = self._pool.replay.views if self._pool.replay is not None else 1
+            check_store_fits(  # the pool's targets: one more store a generation
+                run_dir,
+                self._pool.size,
+                pool_views,
+                self._checks.width,
+                settings.store_dtype,
+                settings.top_k,
+            )
         self.settings["pool"] = None if self._pool is None else self._pool.saved()
         metric_fn = metric or default_metric(torch.as_tensor(train.labels))
         # Per-sample scores of a built-in metric: the report's bootstrap and cross-fitting.
