@@ -190,6 +190,8 @@ def test_bad_pools_are_refused_before_anything_is_written(loaders, tmp_path):
         _lineage(loaders, run, None, admission=Admission())
     with pytest.raises(ValueError, match="targets=.ce."):
         _lineage(loaders, run, _pool_loader(), targets="l2")
+    with pytest.raises(ValueError, match="teacher_mode='online' with a pool"):
+        _lineage(loaders, run, _pool_loader(), teacher_mode="online")
     with pytest.raises(InputError, match="pairs"):
         _lineage(loaders, run, _pool_loader(), admission=Admission(audit=True))
     floats = DataLoader(TensorDataset(torch.zeros(8, 5), torch.zeros(8)), batch_size=4)
@@ -223,7 +225,8 @@ def test_pools_of_inputs_1_tuples_or_pairs_give_tensor_batches(loaders, tmp_path
 
 def test_top_k_pool_targets_carry_the_teachers_class_first(loaders, tmp_path):
     rule = Admission(select="everything", pseudo="hard")
-    lineage = _lineage(loaders, tmp_path / "run", _pool_loader(n=20), admission=rule, top_k=2)
+    lineage = _lineage(loaders, tmp_path / "run", _pool_loader(n=20), admission=rule, top_k=2,
+                       store_dtype="float32")  # (another say_once key than test_topk.py)
     gens = iter(lineage)
     gen0 = next(gens)
     gen0.finish(gen0.model)
@@ -249,6 +252,34 @@ def test_damaged_pool_files_are_refused_on_resume(loaders, tmp_path):
     with pytest.raises(InputError, match="pool files of generation 0 .* damaged"):
         next(iter(again))
     again.close()
+
+
+def test_batch_ratio_fixes_the_pool_rows_of_every_batch(loaders, tmp_path):
+    rule = Admission(select="everything", batch_ratio=1.0)
+    lineage = _lineage(loaders, tmp_path / "run", _pool_loader(n=20), admission=rule)
+    gens = iter(lineage)
+    gen0 = next(gens)
+    gen0.finish(gen0.model)
+    gen1 = next(gens)
+    pool_inputs = blobs(20, seed=4).tensors[0]
+    seen = []
+    for _ in range(2):
+        batches = list(gen1.loader)
+        # batch 16 at one pool row per labelled row: 8 + 8; the epoch ends with the labels
+        assert [len(b[1]) for b in batches] == [16] * 12
+        assert all(int((b[1] == NO_LABEL).sum()) == 8 for b in batches)
+        labelled = torch.cat([b[0][b[1] != NO_LABEL] for b in batches])
+        assert len(labelled) == 96 and len(torch.unique(labelled, dim=0)) == 96
+        seen += [b[0][b[1] == NO_LABEL] for b in batches]
+    # the pool's 20 samples in shuffled cycles: the first 20 pool rows are all different ones
+    rows = torch.cat(seen)
+    assert len(torch.unique(rows[:20], dim=0)) == 20
+    assert len(torch.unique(rows, dim=0)) == 20 and all(
+        any(torch.equal(r, p) for p in pool_inputs) for r in rows[:20]
+    )
+    lineage.close()
+    with pytest.raises(ValueError, match="batch_ratio must be None or > 0"):
+        _lineage(loaders, tmp_path / "other", _pool_loader(), admission=Admission(batch_ratio=0))
 
 
 def test_a_training_label_of_minus_one_is_named(tmp_path):

@@ -111,6 +111,7 @@ def pool_admission(recipe: recipes.Recipe) -> Admission:
         pseudo=p["pseudo"],
         weight=p["weight"],
         audit=p["audit"],
+        batch_ratio=p["batch_ratio"] or None,
     )
 
 

@@ -627,7 +627,7 @@ def _checked_pool(
     problems = Problems()
     found = check_pool_settings(problems, admission, unlabeled_loader, targets, mode)
     if found is not None:
-        problems.attempt(lambda: check_mixable(train_loader))
+        problems.attempt(lambda: check_mixable(train_loader, found))
         problems.attempt(lambda: check_no_label(labels))
     problems.raise_if_any()
     return found

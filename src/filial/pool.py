@@ -119,6 +119,12 @@ class Admission:
     ``audit``
         the pool's second items are its true class labels, kept only to report the
         pseudo-labels' accuracy (``audit_accuracy``); they are used for nothing else.
+    ``batch_ratio``
+        None (default): an epoch covers each labelled and each admitted pool sample once,
+        mixed in one shuffle. ``r`` > 0: every batch holds ``round(batch * r / (1 + r))`` pool
+        rows (``r`` pool rows per labelled row) and the rest labelled ones; an epoch is one
+        pass over the labelled samples (in the training loader's order), the pool's admitted
+        samples drawn in a shuffled cycle that continues across epochs. One process only.
 
     Ties in confidence go to the lower pool index.
     """
@@ -131,6 +137,7 @@ class Admission:
     pseudo: str = "soft"
     weight: float = 1.0
     audit: bool = False
+    batch_ratio: float | None = None
 
     def problems(self) -> list[Exception]:
         """Every problem with these settings (empty when they are fine)."""
@@ -167,6 +174,9 @@ class Admission:
             found.append(ValueError(f"admission step must lie in (0, 1], not {self.step!r}"))
         if not (_real(self.weight) and self.weight >= 0.0):
             found.append(ValueError(f"admission weight must be a number >= 0, not {self.weight!r}"))
+        ratio = self.batch_ratio
+        if ratio is not None and not (_real(ratio) and ratio > 0):
+            found.append(ValueError(f"admission batch_ratio must be None or > 0, not {ratio!r}"))
         if not isinstance(self.audit, bool):
             found.append(TypeError(f"admission audit must be True or False, not {self.audit!r}"))
         return found
@@ -294,11 +304,18 @@ def pool_data(
     return PoolData(passes, admission, size, pairs, probed.fingerprint, replay)
 
 
-def check_mixable(train_loader: DataLoader) -> None:
+def check_mixable(train_loader: DataLoader, admission: Admission | None = None) -> None:
     """The students' epochs go over the labelled and admitted samples together, so filial
     builds their sampler: from a loader with ``batch_size`` (shuffled or not) or a
-    DistributedSampler."""
-    _mixed_sampler(train_loader, range(1))
+    DistributedSampler (not with ``batch_ratio``)."""
+    sampler = _mixed_sampler(train_loader, range(1))
+    if admission is not None and admission.batch_ratio is not None:
+        if isinstance(sampler, DistributedSampler):
+            raise ValueError(
+                "admission batch_ratio fixes the pool rows of every batch in one process; "
+                "under a process group leave batch_ratio=None (each epoch then covers the "
+                "labelled and admitted samples once, sharded by a DistributedSampler)"
+            )
 
 
 def _mixed_sampler(train_loader: DataLoader, dataset: Any) -> Any:
@@ -785,6 +802,58 @@ class MixedCollate:
         )
 
 
+class RatioBatches:
+    """Batches of ``batch`` rows with a fixed share of pool rows (``Admission.batch_ratio``):
+    ``pool_rows = round(batch * ratio / (1 + ratio))`` (at least 1 when any pool sample is
+    admitted, at most ``batch - 1``) and the rest labelled, taken in the order of ``sampler``
+    (over the labelled indices); an epoch ends when the labelled samples are used up. The
+    pool's slots ``labelled .. labelled + slots - 1`` come in a permutation drawn from a
+    private generator seeded from ``seed``, a new one each time it runs out."""
+
+    def __init__(
+        self,
+        sampler: Any,
+        labelled: int,
+        slots: int,
+        batch: int,
+        ratio: float,
+        drop_last: bool,
+        seed: int,
+    ) -> None:
+        self.sampler, self.labelled, self.slots = sampler, labelled, slots
+        pool_rows = min(batch - 1, max(1, round(batch * ratio / (1.0 + ratio)))) if slots else 0
+        self.pool_rows, self.labelled_rows = pool_rows, batch - pool_rows
+        self.drop_last = drop_last
+        self.generator = torch.Generator().manual_seed(seed)
+        self._cycle: list[int] = []
+
+    def __len__(self) -> int:
+        if self.drop_last:
+            return self.labelled // self.labelled_rows
+        return -(-self.labelled // self.labelled_rows)
+
+    def _pool(self, count: int) -> list[int]:
+        taken: list[int] = []
+        while len(taken) < count:
+            if not self._cycle:
+                order = torch.randperm(self.slots, generator=self.generator) + self.labelled
+                self._cycle = order.tolist()
+            want = count - len(taken)
+            taken += self._cycle[:want]
+            self._cycle = self._cycle[want:]
+        return taken
+
+    def __iter__(self) -> Iterator[list[int]]:
+        chunk: list[int] = []
+        for index in self.sampler:
+            chunk.append(int(index))
+            if len(chunk) == self.labelled_rows:
+                yield chunk + self._pool(self.pool_rows)
+                chunk = []
+        if chunk and not self.drop_last:
+            yield chunk + self._pool(self.pool_rows)
+
+
 def mixed_loader(
     train_loader: DataLoader,
     pool: PoolData,
@@ -806,10 +875,16 @@ def mixed_loader(
         teacher.admitted.index,
         views,
     )
-    sampler = _mixed_sampler(train_loader, dataset)
+    ratio = pool.admission.batch_ratio
+    sampler = _mixed_sampler(train_loader, dataset if ratio is None else range(dataset.count))
     batch_sampler: Any = BatchSampler(
         sampler, batch_size_of(train_loader), drop_last=train_loader.drop_last
     )
+    if ratio is not None:
+        batch_sampler = RatioBatches(
+            sampler, dataset.count, len(dataset.admitted), batch_size_of(train_loader),
+            ratio, train_loader.drop_last, choice_seed,
+        )
     if views > 1:
         batch_sampler = ViewChoice(batch_sampler, views, choice_seed)
     pool_collate = pool.loader.collate_fn

@@ -196,6 +196,9 @@ _SCHEMA: dict[str, dict[str, Field]] = {
         "pseudo": Field("choice", "soft", POOL_PSEUDO),
         "weight": Field("float", 1.0, minimum=0.0),
         "audit": Field("bool", False, help="the pool's labels are for the audit figure only"),
+        "batch_ratio": Field(
+            "float", 0.0, minimum=0.0, help="pool rows per labelled row in a batch; 0: mixed"
+        ),
     },
 }
 _FACTORY_SECTIONS = ("data", "model")
