@@ -175,7 +175,10 @@ def test_the_report_says_when_generation_0_was_kept():
     text = "\n".join(pool_lines(records, best=0))
     assert "unlabelled pool (10 samples)" in text and "0.750" in text
     assert "generation 0 (the labelled data alone) was kept: self-training" in text
-    assert "did not help" not in "\n".join(pool_lines(records, best=1))
+    assert "trained with 0" not in "\n".join(pool_lines(records, best=1))
+    assert "trained on no pool sample" in "\n".join(pool_lines(records, best=1))
+    records[1]["pool"] = {**figures, "trained_on": 4}
+    assert "generation 1, trained with 4 pseudo-labelled" in "\n".join(pool_lines(records, 1))
     assert pool_lines([{"generation": 0}], best=0) == []
 
 
@@ -584,3 +587,27 @@ def test_a_kill_in_the_pool_steps_resumes_as_if_nothing_happened(fault, pool_ref
     assert rerun.returncode == 0, rerun.stderr
     assert _pool_records(run_dir) == pool_reference  # the same pool figures, files and sha256s
     assert not list(run_dir.rglob(".*.tmp-*"))
+
+
+@pytest.mark.skipif(not torch.cuda.is_available(), reason="needs a CUDA device")
+def test_a_pool_lineage_with_the_model_on_the_gpu(loaders, tmp_path):
+    """Nothing of the pool assumes the CPU: scores, one-hot rows and the loss follow the
+    model's device (untested here: the machines these tests ran on had no GPU)."""
+    device = torch.device("cuda")
+    train, heldout, _ = loaders
+    lineage = filial.Lineage(
+        lambda: TinyNet()().to(device), train, heldout, run_dir=tmp_path / "gpu",
+        max_generations=1, unlabeled_loader=_pool_loader(n=20), progress=False,
+        admission=Admission(select="everything", pseudo="hard"), tensorboard=False,
+    )
+    for gen in lineage:
+        model = gen.model
+        opt = torch.optim.SGD(model.parameters(), lr=0.1)
+        for inputs, labels, targets in gen.loader:
+            loss = gen.loss(model(inputs.to(device)), labels, targets)
+            assert loss.is_cuda
+            opt.zero_grad()
+            loss.backward()
+            opt.step()
+        gen.finish(model)
+    assert [r["pool"]["admitted"] for r in lineage.result.records] == [20, 20]

@@ -1044,7 +1044,17 @@ def pool_lines(records: Sequence[Any], best: int | None) -> list[str]:
             "pool did not help on the held-out data"
         )
     elif best is not None:
-        out.append(f"generation {best}, trained with pseudo-labelled pool samples, was kept")
+        kept = dict(rows).get(best, {})
+        if kept.get("trained_on"):
+            out.append(
+                f"generation {best}, trained with {kept['trained_on']} pseudo-labelled pool "
+                "slots, was kept"
+            )
+        else:
+            out.append(
+                f"generation {best} was kept, but it trained on no pool sample (its teacher "
+                "admitted none): a gain over generation 0 is not self-training's"
+            )
     return out
 
 
