@@ -476,6 +476,15 @@ def stream_figures(src: Path, large: bool, quick: bool, before: bool) -> dict[st
 
 def stream_rows(after: dict[str, Any], before: dict[str, Any] | None) -> list[dict[str, Any]]:
     """The table rows of the teacher pass at scale, each with its "before" figure."""
+    return (
+        _memory_rows(after, before)
+        + _throughput_rows(after, before)
+        + _replay_rows(after, before)
+        + _write_rows(after, before)
+    )
+
+
+def _memory_rows(after: dict[str, Any], before: dict[str, Any] | None) -> list[dict[str, Any]]:
     rows = []
 
     def peak(figures: dict[str, Any] | None, key: str, n: str, rank: int = 0) -> float | None:
@@ -509,6 +518,12 @@ def stream_rows(after: dict[str, Any], before: dict[str, Any] | None) -> list[di
                 }
             )
 
+    return rows
+
+
+def _throughput_rows(after: dict[str, Any], before: dict[str, Any] | None) -> list[dict[str, Any]]:
+    rows = []
+
     def ratio(figures: dict[str, Any] | None, n: str, key: str) -> float | None:
         found = (figures or {}).get("full_views1", {}).get(n)
         value = None if not found or "error" in found else found[0].get(key)
@@ -525,6 +540,12 @@ def stream_rows(after: dict[str, Any], before: dict[str, Any] | None) -> list[di
                 }
             )
 
+    return rows
+
+
+def _replay_rows(after: dict[str, Any], before: dict[str, Any] | None) -> list[dict[str, Any]]:
+    rows = []
+
     def replay_ratio(figures: dict[str, Any] | None, name: str, key: str) -> float | None:
         found = (figures or {}).get(name)
         value = None if not found or "error" in found else found.get(key)
@@ -540,6 +561,11 @@ def stream_rows(after: dict[str, Any], before: dict[str, Any] | None) -> list[di
                     "goal": "<= 1.3",
                 }
             )
+    return rows
+
+
+def _write_rows(after: dict[str, Any], before: dict[str, Any] | None) -> list[dict[str, Any]]:
+    rows = []
     writes = after["store_write"]
     for n, found in writes.items():
         old = (before or {}).get("store_write", {}).get(n)
