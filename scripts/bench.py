@@ -72,6 +72,14 @@ from filial.metrics import accuracy, as_float_metric
 from filial.store import TargetStore
 from filial.teacher import FigureSpec, StoreSpec, training_pass
 
+# The mail room's sizes: the demo's, or (--quick) a few hundred envelopes for a smoke run.
+ROOM_SIZES: dict[str, int] = {}
+
+
+def digits_room() -> Any:
+    """The mail-room digits every digits figure uses (smaller under ``--quick``)."""
+    return mail_room(noise=0.3, seed=0, **ROOM_SIZES)
+
 
 def alternate(
     a: Callable[[], Any], b: Callable[[], Any], repeats: int, inner: int = 1
@@ -200,7 +208,7 @@ def student_overhead(model_fn, dataset, heldout, batch, repeats, work: Path) -> 
 def teacher_pass(repeats: int, work: Path) -> dict[str, Any]:
     """The streamed teacher pass (the store written and published, the record's figures
     summed) against a plain ``no_grad`` loop over the same data, digits MLP."""
-    room = mail_room(noise=0.3, seed=0)
+    room = digits_room()
     train, heldout, _ = room.loaders(batch_size=64, seed=0)
     model = MLP((256, 256))()
     spec = StoreSpec("float16", 1, None, "bench")
@@ -234,7 +242,7 @@ def cache_versus_online(
     """A student epoch over the cache against one with teacher_mode='online' (the teacher, of
     the student's size, runs on every batch). Default: the digits MLP."""
     if model_fn is None:
-        room = mail_room(noise=0.3, seed=0)
+        room = digits_room()
         train, heldout, _ = room.loaders(batch_size=64, seed=0)
         model_fn = MLP((256, 256))
     _, cached_gen, _ = _two_generations(model_fn, train, heldout, work / "cached")
@@ -312,7 +320,7 @@ def store_gather(rows: int, repeats: int, work: Path) -> dict[str, Any]:
 
 def lineage_overhead(epochs: int, work: Path) -> dict[str, Any]:
     """Wall time of a 3-generation lineage / (its training epochs + teacher passes)."""
-    room = mail_room(noise=0.3, seed=0)
+    room = digits_room()
     train, heldout, test = room.loaders(batch_size=64, seed=0)
     spent = {"fit": 0.0, "teacher": 0.0}
     fit = filial.fit_epochs(
@@ -363,7 +371,7 @@ def lineage_overhead(epochs: int, work: Path) -> dict[str, Any]:
 def early_stopping_cost(epochs: int, repeats: int, work: Path) -> dict[str, Any]:
     """The early-stopped baseline / the matched baseline of one finished lineage (both train
     for the lineage's epochs; the first also scores the held-out set after every epoch)."""
-    room = mail_room(noise=0.3, seed=0)
+    room = digits_room()
     train, heldout, _ = room.loaders(batch_size=64, seed=0)
 
     def make_fit(count: int) -> filial.fit.EpochFit:
@@ -442,7 +450,7 @@ def stream_figures(src: Path, large: bool, quick: bool, before: bool) -> dict[st
     some 20-77 GiB, so ``before`` skips those sizes."""
     small = 5_000 if quick else 100_000
     sizes = [small] + ([IMAGENET] if large and not before and not quick else [])
-    ranks = [2_000, 8_000] if quick else [25_000, 100_000]
+    ranks = [2_000] if quick else [25_000, 100_000]
     figures: dict[str, Any] = {"src": str(src), "full_views1": {}, "topk10_views4": {}}
     for n in sizes:
         full = _stream("finish", n, src)
@@ -615,6 +623,8 @@ def main() -> int:
     )
     args = parser.parse_args()
     repeats = 2 if args.quick else max(5, args.repeats)
+    if args.quick:
+        ROOM_SIZES.update(train_size=256, heldout_size=100)
     rows = 4096 if args.quick else args.store_rows
     lineage_epochs = 2 if args.quick else 30
     torch.set_num_threads(args.threads)
@@ -683,7 +693,7 @@ def loop_figures(
     args: argparse.Namespace, repeats: int, rows: int, lineage_epochs: int, work: Path
 ) -> dict[str, Any]:
     """The figures of the training and teacher loops, in one process."""
-    room = mail_room(noise=0.3, seed=0)
+    room = digits_room()
     images, held_images = (
         (random_images(128, 1), random_images(64, 2))
         if args.quick
