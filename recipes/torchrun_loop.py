@@ -26,6 +26,17 @@ import filial
 from filial.demo import MLP, mail_room
 
 
+def join_group() -> tuple[bool, bool]:
+    """Join the process group when torchrun started this process: (launched, cuda)."""
+    launched = dist.is_torchelastic_launched()  # set by torchrun
+    cuda = torch.cuda.is_available()
+    if launched:
+        if cuda:
+            torch.cuda.set_device(int(os.environ["LOCAL_RANK"]))
+        dist.init_process_group("nccl" if cuda else "gloo")
+    return launched, cuda
+
+
 def main() -> None:
     parser = argparse.ArgumentParser()
     parser.add_argument("--epochs", type=int, default=30)
@@ -40,12 +51,7 @@ def main() -> None:
     if args.threads:
         torch.set_num_threads(args.threads)
 
-    launched = dist.is_torchelastic_launched()  # set by torchrun
-    cuda = torch.cuda.is_available()
-    if launched:
-        if cuda:
-            torch.cuda.set_device(int(os.environ["LOCAL_RANK"]))
-        dist.init_process_group("nccl" if cuda else "gloo")
+    launched, cuda = join_group()
     world = dist.get_world_size() if launched else 1
     main_rank = not launched or dist.get_rank() == 0
     device = torch.device("cuda", torch.cuda.current_device()) if cuda else torch.device("cpu")

@@ -76,6 +76,14 @@ from filial.metrics import accuracy, as_float_metric
 from filial.store import TargetStore
 from filial.teacher import FigureSpec, StoreSpec, training_pass
 
+# The mail room's sizes: the demo's, or (--quick) a few hundred envelopes for a smoke run.
+ROOM_SIZES: dict[str, int] = {}
+
+
+def digits_room() -> Any:
+    """The mail-room digits every digits figure uses (smaller under ``--quick``)."""
+    return mail_room(noise=0.3, seed=0, **ROOM_SIZES)
+
 
 def alternate(
     a: Callable[[], Any], b: Callable[[], Any], repeats: int, inner: int = 1
@@ -280,7 +288,7 @@ def pool_student_overhead(repeats: int, work: Path, quick: bool) -> dict[str, An
 def teacher_pass(repeats: int, work: Path) -> dict[str, Any]:
     """The streamed teacher pass (the store written and published, the record's figures
     summed) against a plain ``no_grad`` loop over the same data, digits MLP."""
-    room = mail_room(noise=0.3, seed=0)
+    room = digits_room()
     train, heldout, _ = room.loaders(batch_size=64, seed=0)
     model = MLP((256, 256))()
     spec = StoreSpec("float16", 1, None, "bench")
@@ -314,7 +322,7 @@ def cache_versus_online(
     """A student epoch over the cache against one with teacher_mode='online' (the teacher, of
     the student's size, runs on every batch). Default: the digits MLP."""
     if model_fn is None:
-        room = mail_room(noise=0.3, seed=0)
+        room = digits_room()
         train, heldout, _ = room.loaders(batch_size=64, seed=0)
         model_fn = MLP((256, 256))
     _, cached_gen, _ = _two_generations(model_fn, train, heldout, work / "cached")
@@ -392,7 +400,7 @@ def store_gather(rows: int, repeats: int, work: Path) -> dict[str, Any]:
 
 def lineage_overhead(epochs: int, work: Path) -> dict[str, Any]:
     """Wall time of a 3-generation lineage / (its training epochs + teacher passes)."""
-    room = mail_room(noise=0.3, seed=0)
+    room = digits_room()
     train, heldout, test = room.loaders(batch_size=64, seed=0)
     spent = {"fit": 0.0, "teacher": 0.0}
     fit = filial.fit_epochs(
@@ -443,7 +451,7 @@ def lineage_overhead(epochs: int, work: Path) -> dict[str, Any]:
 def early_stopping_cost(epochs: int, repeats: int, work: Path) -> dict[str, Any]:
     """The early-stopped baseline / the matched baseline of one finished lineage (both train
     for the lineage's epochs; the first also scores the held-out set after every epoch)."""
-    room = mail_room(noise=0.3, seed=0)
+    room = digits_room()
     train, heldout, _ = room.loaders(batch_size=64, seed=0)
 
     def make_fit(count: int) -> filial.fit.EpochFit:
@@ -522,7 +530,7 @@ def stream_figures(src: Path, large: bool, quick: bool, before: bool) -> dict[st
     some 20-77 GiB, so ``before`` skips those sizes."""
     small = 5_000 if quick else 100_000
     sizes = [small] + ([IMAGENET] if large and not before and not quick else [])
-    ranks = [2_000, 8_000] if quick else [25_000, 100_000]
+    ranks = [2_000] if quick else [25_000, 100_000]
     figures: dict[str, Any] = {"src": str(src), "full_views1": {}, "topk10_views4": {}}
     for n in sizes:
         full = _stream("finish", n, src)
@@ -556,6 +564,15 @@ def stream_figures(src: Path, large: bool, quick: bool, before: bool) -> dict[st
 
 def stream_rows(after: dict[str, Any], before: dict[str, Any] | None) -> list[dict[str, Any]]:
     """The table rows of the teacher pass at scale, each with its "before" figure."""
+    return (
+        _memory_rows(after, before)
+        + _throughput_rows(after, before)
+        + _replay_rows(after, before)
+        + _write_rows(after, before)
+    )
+
+
+def _memory_rows(after: dict[str, Any], before: dict[str, Any] | None) -> list[dict[str, Any]]:
     rows = []
 
     def peak(figures: dict[str, Any] | None, key: str, n: str, rank: int = 0) -> float | None:
@@ -589,6 +606,12 @@ def stream_rows(after: dict[str, Any], before: dict[str, Any] | None) -> list[di
                 }
             )
 
+    return rows
+
+
+def _throughput_rows(after: dict[str, Any], before: dict[str, Any] | None) -> list[dict[str, Any]]:
+    rows = []
+
     def ratio(figures: dict[str, Any] | None, n: str, key: str) -> float | None:
         found = (figures or {}).get("full_views1", {}).get(n)
         value = None if not found or "error" in found else found[0].get(key)
@@ -605,6 +628,12 @@ def stream_rows(after: dict[str, Any], before: dict[str, Any] | None) -> list[di
                 }
             )
 
+    return rows
+
+
+def _replay_rows(after: dict[str, Any], before: dict[str, Any] | None) -> list[dict[str, Any]]:
+    rows = []
+
     def replay_ratio(figures: dict[str, Any] | None, name: str, key: str) -> float | None:
         found = (figures or {}).get(name)
         value = None if not found or "error" in found else found.get(key)
@@ -620,6 +649,11 @@ def stream_rows(after: dict[str, Any], before: dict[str, Any] | None) -> list[di
                     "goal": "<= 1.3",
                 }
             )
+    return rows
+
+
+def _write_rows(after: dict[str, Any], before: dict[str, Any] | None) -> list[dict[str, Any]]:
+    rows = []
     writes = after["store_write"]
     for n, found in writes.items():
         old = (before or {}).get("store_write", {}).get(n)
@@ -669,6 +703,8 @@ def main() -> int:
     )
     args = parser.parse_args()
     repeats = 2 if args.quick else max(5, args.repeats)
+    if args.quick:
+        ROOM_SIZES.update(train_size=256, heldout_size=100)
     rows = 4096 if args.quick else args.store_rows
     lineage_epochs = 2 if args.quick else 30
     torch.set_num_threads(args.threads)
@@ -737,7 +773,7 @@ def loop_figures(
     args: argparse.Namespace, repeats: int, rows: int, lineage_epochs: int, work: Path
 ) -> dict[str, Any]:
     """The figures of the training and teacher loops, in one process."""
-    room = mail_room(noise=0.3, seed=0)
+    room = digits_room()
     images, held_images = (
         (random_images(128, 1), random_images(64, 2))
         if args.quick

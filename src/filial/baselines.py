@@ -314,7 +314,36 @@ def train_baseline(
     early-stopped baseline keep each evaluated epoch's per-sample held-out scores.
     """
     epochs = matched_epochs(records)
-    lineage_run = inputs.run
+    reused = _reused(spec, inputs.run, epochs)
+    if reused is not None:
+        return reused
+    keeper = BestEpoch(inputs, epochs, spec.every, scores) if spec.early_stopped else None
+    loss = inputs.loss
+    if spec.name == "label-smoothing":
+        loss = StudentLoss("ce", label_smoothing=spec.label_smoothing)
+    seed_generation(inputs.seed, 0, inputs.train_loader)
+    baseline_inputs = dataclasses.replace(
+        inputs, run=inputs.run.baseline(spec.name), write_targets=False, loss=loss
+    )
+    conclude = _concluder(spec, inputs.run, epochs, keeper)
+    gen = Generation(0, model_fn(), baseline_inputs, conclude)
+    fit = make_fit(epochs)
+    if keeper is not None:
+        fit = _epoch_fit(fit, keeper, spec.name)
+    elif isinstance(fit, EpochFit):
+        fit = fit.with_epoch_end(None, title=f"baseline {spec.name}")
+    fitted = fit(gen)
+    model = fitted if fitted is not None else gen.model
+    if keeper is not None:
+        keeper.restore(model)
+    record: Any = gen.finish(model)
+    observer.baseline_ended(record, records)
+    return record
+
+
+def _reused(spec: BaselineSpec, lineage_run: RunDirectory, epochs: int) -> BaselineRecord | None:
+    """A finished baseline of these settings, read on every rank (rank 0 looks, and drops a
+    record of other settings before its files are replaced); None when it must train."""
     record_path = lineage_run.baseline_record(spec.name)
 
     def look() -> tuple[int, Any]:
@@ -330,61 +359,52 @@ def train_baseline(
         look, f"looking for the {spec.name} baseline", tell, 1
     )
     found, (where,) = outcome
-    if where:
-        if found is not None:
-            return found[1]
-        path = record_path if where == 1 else lineage_run.baseline_state_path
-        return json.loads(path.read_text(encoding="utf-8"))
+    if not where:
+        return None
+    if found is not None:
+        return found[1]
+    path = record_path if where == 1 else lineage_run.baseline_state_path
+    return json.loads(path.read_text(encoding="utf-8"))
 
-    run = lineage_run.baseline(spec.name)
-    keeper = BestEpoch(inputs, epochs, spec.every, scores) if spec.early_stopped else None
-    loss = inputs.loss
-    if spec.name == "label-smoothing":
-        loss = StudentLoss("ce", label_smoothing=spec.label_smoothing)
+
+def _concluder(
+    spec: BaselineSpec, lineage_run: RunDirectory, epochs: int, keeper: BestEpoch | None
+) -> Callable[[Generation, Callable[[], Measured] | None], GenerationRecord]:
+    """What finishing the baseline's generation does: rank 0 writes its files and record
+    (the record last), the other ranks read the record."""
+    record_path = lineage_run.baseline_record(spec.name)
+
+    def save(write: Callable[[], Measured] | None) -> BaselineRecord:
+        assert write is not None  # rank 0 (or one process) writes
+        record: Any = write().record
+        record.update(
+            kind=f"{spec.name}-baseline",
+            checkpoint=lineage_run.baseline_entry(spec.name, record["checkpoint"]),
+            **spec.settings(epochs),
+        )
+        if keeper is not None:
+            written = keeper.write_scores(lineage_run.baseline_epochs(spec.name))
+            record.update(
+                best_epoch=keeper.best_epoch,
+                evaluated=list(keeper.evaluated),
+                heldout_epochs=lineage_run.baseline_entry(spec.name, BASELINE_EPOCHS_FILE)
+                if written
+                else None,
+            )
+        atomic_write_json(record_path, record)
+        if spec.name == "matched":
+            _drop_legacy_matched(lineage_run)
+        return record
 
     def conclude(gen: Generation, write: Callable[[], Measured] | None) -> GenerationRecord:
-        def save() -> BaselineRecord:
-            assert write is not None  # rank 0 (or one process) writes
-            record: Any = write().record
-            record.update(
-                kind=f"{spec.name}-baseline",
-                checkpoint=lineage_run.baseline_entry(spec.name, record["checkpoint"]),
-                **spec.settings(epochs),
-            )
-            if keeper is not None:
-                written = keeper.write_scores(lineage_run.baseline_epochs(spec.name))
-                record.update(
-                    best_epoch=keeper.best_epoch,
-                    evaluated=list(keeper.evaluated),
-                    heldout_epochs=lineage_run.baseline_entry(spec.name, BASELINE_EPOCHS_FILE)
-                    if written
-                    else None,
-                )
-            atomic_write_json(record_path, record)
-            if spec.name == "matched":
-                _drop_legacy_matched(lineage_run)
-            return record
-
-        saved = distributed.on_rank_zero(save, f"writing the {spec.name} baseline")
+        saved = distributed.on_rank_zero(
+            lambda: save(write), f"writing the {spec.name} baseline"
+        )
         if saved is None:  # a rank other than 0: rank 0 has written the baseline's record
             saved = json.loads(record_path.read_text(encoding="utf-8"))
         return saved
 
-    seed_generation(inputs.seed, 0, inputs.train_loader)
-    baseline_inputs = dataclasses.replace(inputs, run=run, write_targets=False, loss=loss)
-    gen = Generation(0, model_fn(), baseline_inputs, conclude)
-    fit = make_fit(epochs)
-    if keeper is not None:
-        fit = _epoch_fit(fit, keeper, spec.name)
-    elif isinstance(fit, EpochFit):
-        fit = fit.with_epoch_end(None, title=f"baseline {spec.name}")
-    fitted = fit(gen)
-    model = fitted if fitted is not None else gen.model
-    if keeper is not None:
-        keeper.restore(model)
-    record: Any = gen.finish(model)
-    observer.baseline_ended(record, records)
-    return record
+    return conclude
 
 
 def train_matched_baseline(

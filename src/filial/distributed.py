@@ -469,33 +469,10 @@ def gather_indexed(
     if not is_distributed():
         return assemble([marked], [[v] for v in values], size)
     device = collective_device(values[0].device if values else None)
-    # Every rank says how many rows it sends, its dataset size and whether its rows fit its
-    # indices, before any of them sends rows: a problem on one rank stops all of them here.
-    shapes = torch.tensor([len(marked), size, int(uneven)], dtype=torch.int64, device=device)
-    every = [torch.empty_like(shapes) for _ in range(world_size())]
-    torch.distributed.all_gather(every, shapes)
-    unfit = [r for r, s in enumerate(every) if int(s[2])]
-    if unfit:
-        raise ValueError(
-            f"rank(s) {unfit} passed tensors whose rows do not match their indices; every "
-            "tensor must have one row per index"
-        )
-    lengths = [int(s[0]) for s in every]
-    sizes = {int(s[1]) for s in every}
-    if len(sizes) != 1:
-        raise CoverageError(
-            f"the ranks evaluate datasets of different sizes ({sorted(sizes)}); every rank "
-            "must pass the same dataset"
-        )
+    lengths = _agreed_lengths(len(marked), size, uneven, device)
     longest = max(lengths)
     received = _gather(_pad(marked, longest, -1).to(device))
-    received_values = []
-    for value in values:
-        transport = value.to(torch.uint8) if value.dtype == torch.bool else value
-        parts = _gather(_pad(transport, longest, 0).to(device))
-        if parts is not None and value.dtype == torch.bool:
-            parts = [p.to(torch.bool) for p in parts]
-        received_values.append(parts)
+    received_values = [_gather_value(value, longest, device) for value in values]
     problem = ""
     assembled: list[torch.Tensor] | None = None
     if received is not None:
@@ -516,6 +493,39 @@ def gather_indexed(
             "once; the indices are named in rank 0's error"
         )
     return assembled
+
+
+def _agreed_lengths(rows: int, size: int, uneven: bool, device: torch.device) -> list[int]:
+    """Every rank's row count, after every rank has said how many rows it sends, its dataset
+    size and whether its rows fit its indices, before any of them sends rows: a problem on one
+    rank stops all of them here."""
+    shapes = torch.tensor([rows, size, int(uneven)], dtype=torch.int64, device=device)
+    every = [torch.empty_like(shapes) for _ in range(world_size())]
+    torch.distributed.all_gather(every, shapes)
+    unfit = [r for r, s in enumerate(every) if int(s[2])]
+    if unfit:
+        raise ValueError(
+            f"rank(s) {unfit} passed tensors whose rows do not match their indices; every "
+            "tensor must have one row per index"
+        )
+    sizes = {int(s[1]) for s in every}
+    if len(sizes) != 1:
+        raise CoverageError(
+            f"the ranks evaluate datasets of different sizes ({sorted(sizes)}); every rank "
+            "must pass the same dataset"
+        )
+    return [int(s[0]) for s in every]
+
+
+def _gather_value(
+    value: torch.Tensor, longest: int, device: torch.device
+) -> list[torch.Tensor] | None:
+    """One tensor of rows gathered to rank 0 (booleans travel as uint8)."""
+    transport = value.to(torch.uint8) if value.dtype == torch.bool else value
+    parts = _gather(_pad(transport, longest, 0).to(device))
+    if parts is not None and value.dtype == torch.bool:
+        parts = [p.to(torch.bool) for p in parts]
+    return parts
 
 
 def _pad(tensor: torch.Tensor, length: int, fill: int) -> torch.Tensor:
