@@ -102,7 +102,8 @@ class Admission:
         probability (softmax at temperature 1) is above ``threshold`` (strictly, as
         scikit-learn's ``SelfTrainingClassifier``). ``"top"``: the ``count`` most confident.
         ``"per_class"``: per predicted class the ``count`` most confident (of those above
-        ``threshold`` when one is given), a class with fewer duplicated in confidence order
+        ``threshold``, default 0.9: pass ``threshold=None`` for no such filter; Noisy Student
+        used 0.3 on ImageNet), a class with fewer duplicated in confidence order
         until it has ``count`` (Noisy Student's balancing). ``"growing"``: the most confident
         ``step * (g + 1)`` share of the pool for the student of generation ``g + 1``
         (curriculum pseudo-labelling: 20 %, 40 %, ... with ``step=0.2``).
