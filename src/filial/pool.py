@@ -382,6 +382,11 @@ class PoolScores:
             self._truth.append(labels.long())
 
     def result(self) -> Scores | None:
+        if not self._codes:  # a rank whose shard held no batch at all
+            self._codes = [torch.zeros(0, dtype=torch.int64)]
+            self._confidence = [torch.zeros(0)]
+            self._predicted = [torch.zeros(0, dtype=torch.int64)]
+            self._truth = [torch.zeros(0, dtype=torch.int64)]
         values = [torch.cat(self._confidence).cpu().double(), torch.cat(self._predicted).cpu()]
         if self.audit:
             values.append(torch.cat(self._truth))
