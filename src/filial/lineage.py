@@ -15,21 +15,26 @@ generation without one. The other rooms: :mod:`filial.settings` (which settings 
 
 from __future__ import annotations
 
-import functools
-import json
 import logging
 from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-import numpy as np
 import torch
 from torch import nn
-from torch.utils.data import DataLoader, DistributedSampler
+from torch.utils.data import DataLoader
 
 from . import distributed
-from ._io import atomic_write
+from .arguments import (
+    check_ranks,
+    check_stores_fit,
+    check_top_k,
+    checked_arguments,
+    checked_pool,
+    online,
+    pool_for,
+)
 from .baselines import (
     DEFAULT_LABEL_SMOOTHING,
     FitFactory,
@@ -37,30 +42,22 @@ from .baselines import (
     train_baseline,
 )
 from .checkpoint import load_model
-from .data import check_loader
-from .errors import InputError, Problems
+from .concluding import Concluder
 from .evaluation import HeldoutHistory
-from .generation import Generation, GenerationInputs, Measured
+from .generation import Generation, GenerationInputs
 from .metrics import Metric, as_float_metric, default_metric, metric_name, sample_scores
 from .models import ModelChecks
-from .observers import ConsoleProgress, Observer, Observers, TensorBoardRuns
+from .observers import Observer, Observers, standard_observers
 from .pool import (
     Admission,
-    PoolData,
-    check_mixable,
-    check_no_label,
-    check_pool_settings,
     open_teacher,
-    pool_data,
 )
-from .probe import Probe, check_augmentation, probe, replay_for, say_once, warn_changing_heldout
-from .records import BaselineRecord, DecisionState, GenerationRecord
+from .probe import replay_for
+from .records import BaselineRecord, GenerationRecord
 from .rundir import LineageState, RunDirectory
-from .seeding import samplers_of, seed_generation
-from .settings import DataFacts, Settings, saved_settings
-from .space import check_store_fits
+from .seeding import seed_generation
+from .settings import DataFacts, saved_settings
 from .stopping import StopRule
-from .store import TargetStore, index_dtype
 from .teacher import StoreSpec, TeacherStores
 
 log = logging.getLogger("filial")
@@ -172,7 +169,7 @@ class Lineage:
         admission: Admission | None = None,
     ) -> None:
         # Long only for its arguments: each is checked elsewhere, and the rooms are built here.
-        settings, train, heldout = _checked_arguments(
+        settings, train, heldout = checked_arguments(
             model_fn,
             (train_loader, heldout_loader, test_loader),
             metric,
@@ -190,44 +187,26 @@ class Lineage:
                 "seed": seed,
             },
         )
-        pool_settings = _checked_pool(
+        pool_settings = checked_pool(
             admission, unlabeled_loader, train_loader, targets, teacher_mode, train.labels
         )
         loss = settings.loss()
         self._checks = ModelChecks(model_fn, train.inputs, train.labels, loss)
-        _check_top_k(settings, self._checks.width)
-        if not _online(settings):  # the next generation's store must fit (online: no store)
-            check_store_fits(
-                run_dir,
-                len(train_loader.dataset),  # type: ignore[arg-type]
-                settings.views,
-                self._checks.width,
-                settings.store_dtype,
-                settings.top_k,
-            )
+        check_top_k(settings, self._checks.width)
+        check_stores_fit(run_dir, settings, train_loader, self._checks.width)
         self.model_fn = model_fn
         self.run_dir = Path(run_dir)
         self._run = RunDirectory(self.run_dir)
-        self.rule: StopRule = settings.rule()
-        replay = replay_for(train, settings.views, settings.seed) if not _online(settings) else None
+        rule = settings.rule()
+        replay = replay_for(train, settings.views, settings.seed) if not online(settings) else None
         facts = DataFacts.of(
             (train_loader, heldout_loader, test_loader), (train, heldout), replay, metric, model_fn
         )
         self.settings: dict[str, Any] = saved_settings(settings, facts)
         # The unlabelled pool (filial.pool): its settings and fingerprint; None without one.
-        self._pool: PoolData | None = None
-        if pool_settings is not None:
-            assert unlabeled_loader is not None
-            self._pool = pool_data(unlabeled_loader, pool_settings, replay, settings.seed)
-            pool_views = self._pool.replay.views if self._pool.replay is not None else 1
-            check_store_fits(  # the pool's targets: one more store a generation
-                run_dir,
-                self._pool.size,
-                pool_views,
-                self._checks.width,
-                settings.store_dtype,
-                settings.top_k,
-            )
+        self._pool = pool_for(
+            unlabeled_loader, pool_settings, replay, settings, run_dir, self._checks.width
+        )
         self.settings["pool"] = None if self._pool is None else self._pool.saved()
         metric_fn = metric or default_metric(torch.as_tensor(train.labels))
         # Per-sample scores of a built-in metric: the report's bootstrap and cross-fitting.
@@ -242,7 +221,7 @@ class Lineage:
             metric=as_float_metric(metric_fn, metric_name(metric)),
             seed=settings.seed,
             store=spec,
-            write_targets=not _online(settings),  # online students never read a cache
+            write_targets=not online(settings),  # online students never read a cache
             replay=replay,
             check_finished=self._checks.finished,
             pool=self._pool,
@@ -251,30 +230,29 @@ class Lineage:
             self._run, model_fn, train_loader, replay, spec, settings.seed
         )
         self._heldout = HeldoutHistory(self._run.heldout, settings.targets, self._inputs.metric)
-        self._observers = Observers(self._observers_for(progress, tensorboard, observers))
+        self._observers = Observers(
+            standard_observers(self._run, progress, tensorboard, observers)
+        )
         self._observers.attached(self.run_dir, self.settings)
         self._state = LineageState(self._run, self.settings)
         if distributed.is_distributed():
-            self._check_ranks(train_loader)
+            check_ranks(self.settings, train_loader)
+        self._concluder = Concluder(
+            self._state, self._run, rule, self._heldout, self._teachers,
+            self._observers,
+        )
         self._state.open(fresh)
         if self._state.resumed:
             self._observers.resumed(self._run.root, self._state.records, self._state.decision)
 
-    def _observers_for(
-        self, progress: bool, tensorboard: bool | str | Path, extra: Sequence[Observer]
-    ) -> list[Observer]:
-        """TensorBoard runs, the user's observers and progress lines, on rank 0 only under a
-        process group."""
-        if not distributed.is_main():
-            return []
-        observers: list[Observer] = []
-        if tensorboard:
-            folder = self._run.tensorboard_path if tensorboard is True else Path(tensorboard)
-            observers.append(TensorBoardRuns(folder))
-        observers.extend(extra)
-        if progress:
-            observers.append(ConsoleProgress())
-        return observers
+    @property
+    def rule(self) -> StopRule:
+        """The stop rule (from the settings); a replacement given here is the one used."""
+        return self._concluder.rule
+
+    @rule.setter
+    def rule(self, value: StopRule) -> None:
+        self._concluder.rule = value
 
     # -- the run directory -------------------------------------------------------------------
 
@@ -288,30 +266,6 @@ class Lineage:
         the same run directory resumes the run."""
         self._state.close()
         self._observers.close()
-
-    def _check_ranks(self, train_loader: DataLoader) -> None:
-        """Under a process group: every rank must build the same lineage over the same data,
-        and the training loader should give each rank its own shard."""
-        differing = distributed.ranks_differing(json.dumps(self.settings, sort_keys=True))
-        if differing:
-            raise InputError(
-                f"rank(s) {differing} built the Lineage with other settings or data than rank 0 "
-                "(compared: the settings saved in lineage.json, which include fingerprints of "
-                "the training and held-out data). Every rank must pass the same arguments and "
-                "the same datasets; shard the training set with a DistributedSampler instead of "
-                "giving each rank a dataset of its own."
-            )
-        samplers = samplers_of(train_loader)
-        if distributed.is_main() and not any(isinstance(s, DistributedSampler) for s in samplers):
-            # A warning, not a refusal: a batch sampler of the user's own may shard as well.
-            log.warning(
-                "%d processes run this lineage, but the training loader has no "
-                "DistributedSampler: unless its sampler shards the data itself, every rank "
-                "trains on the whole training set in every epoch. Pass DataLoader(dataset, "
-                "sampler=torch.utils.data.DistributedSampler(dataset), ...) to give each rank "
-                "its shard.",
-                distributed.world_size(),
-            )
 
     # -- the loop ----------------------------------------------------------------------------
 
@@ -456,198 +410,10 @@ class Lineage:
             index,
             model,
             self._inputs,
-            self._conclude,
+            self._concluder.conclude,
             teacher=teacher,
             store=store,
             online_teacher=online,
             observer=self._observers,
             pool_teacher=pool_teacher,
-        )
-
-    def _conclude(self, gen: Generation, write: Callable[[], Measured] | None) -> GenerationRecord:
-        """``gen.finish``'s last step: rank 0 scores and writes the generation (``write``),
-        records it and decides; every rank learns the decision.
-
-        Note: several processes. The other ranks wait in one broadcast for ``[ok, stop,
-        finished generations]``; ``ok = 0`` when rank 0 failed, so that they raise instead of
-        waiting for a decision that never comes. They then read rank 0's records.
-        """
-        state = self._state
-        state.check_current(f"finishing generation {gen.index}")
-        if gen.index != len(state.records) or self.done:
-            raise RuntimeError(
-                f"generation {gen.index} finished out of turn (the lineage has "
-                f"{len(state.records)} finished generations)"
-            )
-
-        def record_here() -> GenerationRecord:
-            assert write is not None  # rank 0 (or one process) holds the passes
-            return self._record(gen, write())
-
-        def told(record: GenerationRecord) -> tuple[int, int]:
-            return int("stop" in record), len(state.records)
-
-        outcome = distributed.on_rank_zero_telling(
-            record_here, f"finishing generation {gen.index}", told, 2
-        )
-        record, (stop, finished) = outcome
-        return record if record is not None else state.follow(gen.index, stop, finished)
-
-    def _record(self, gen: Generation, measured: Measured) -> GenerationRecord:
-        """Add the figures that need earlier generations, decide, write ``lineage.json``, tell
-        the observers. Memory follows the file: if the write fails, the generation can be
-        finished again."""
-        record, heldout = measured.record, measured.heldout
-        records = self._state.records
-        self._heldout.add(gen.index, heldout.outputs)
-        labels_path = self._run.heldout_labels_path
-        if not labels_path.is_file():
-            labels = heldout.labels.numpy()
-            atomic_write(labels_path, lambda handle: np.save(handle, labels, allow_pickle=False))
-        if not record["diverged"]:
-            members = [r["generation"] for r in records if not r.get("diverged")]
-            record["ensemble"] = self._heldout.ensemble_metric(members, heldout)
-            if gen.teacher is not None:
-                record["agreement"] = self._heldout.agreement(gen.teacher, heldout)
-            self._teachers.fresh = TargetStore(gen.directory)
-        if self._state.resumed:
-            _warn_about_other_passes(records, record)
-        decision = self.rule.decide([*records, record])
-        if decision.stop:
-            record["stop"] = {"reason": decision.reason, "best": decision.best, **decision.detail}  # type: ignore[typeddict-item]
-        state: DecisionState = {
-            "stop": decision.stop,
-            "reason": decision.reason,
-            "best": decision.best,
-            "detail": decision.detail,
-        }
-        self._state.commit(record, state)
-        self._observers.generation_ended(record, self._state.records, state)
-        return record
-
-
-def _warn_about_other_passes(records: list[GenerationRecord], newest: GenerationRecord) -> None:
-    """After a resume the lineage cannot see the user's loop: say when a new generation trained
-    a different number of passes over ``gen.loader`` than the earlier ones all did."""
-    earlier = {r.get("passes") for r in records}
-    if len(earlier) != 1 or None in earlier or newest.get("passes") in earlier:
-        return
-    (passes,) = earlier
-    log.warning(
-        "generation %d trained %s passes over gen.loader, generations %d-%d trained %s each: "
-        "after a resume filial cannot see your loop, so check that it trains as before (the "
-        "generations are compared as if it did)",
-        newest["generation"],
-        newest.get("passes"),
-        records[0]["generation"],
-        records[-1]["generation"],
-        passes,
-    )
-
-
-def _check_callables(problems: Problems, model_fn: Any, metric: Any) -> None:
-    if isinstance(model_fn, nn.Module):
-        problems.add(
-            TypeError(
-                f"model_fn must be a function that builds a new model each time it is called "
-                f"(filial calls it once per generation), but got a {type(model_fn).__name__} "
-                "module: pass make_model, not make_model()"
-            )
-        )
-    elif not callable(model_fn):
-        problems.add(TypeError(f"model_fn must be callable, but got {model_fn!r}"))
-    if metric is not None and not callable(metric):
-        problems.add(TypeError(f"metric must be callable or None, but got {metric!r}"))
-
-
-def _check_loaders(problems: Problems, loaders: tuple[Any, Any, Any]) -> None:
-    train_loader, heldout_loader, _ = loaders
-    roles = ("train_loader", "heldout_loader", "test_loader")
-    for role, loader in zip(roles, loaders, strict=True):
-        if loader is not None or role != "test_loader":
-            problems.attempt(functools.partial(check_loader, loader, role))
-    if heldout_loader is train_loader or (
-        isinstance(heldout_loader, DataLoader)
-        and isinstance(train_loader, DataLoader)
-        and heldout_loader.dataset is train_loader.dataset
-    ):
-        problems.add(
-            ValueError(
-                "heldout_loader is the training loader (or reads the same dataset object); "
-                "held-out evidence must come from samples the students do not train on. "
-                "Split off a held-out set, e.g. with torch.utils.data.random_split."
-            )
-        )
-
-
-def _online(settings: Settings) -> bool:
-    return settings.teacher_mode == "online"
-
-
-def _checked_arguments(
-    model_fn: Any, loaders: tuple[Any, Any, Any], metric: Any, given: dict[str, Any]
-) -> tuple[Settings, Probe, Probe]:
-    """Check every argument, then the data's first samples; raise all problems together."""
-    train_loader, heldout_loader, _ = loaders
-    problems = Problems()
-    _check_callables(problems, model_fn, metric)
-    _check_loaders(problems, loaders)
-    settings = Settings.parse(problems, **given)
-    train = heldout = None
-    if not len(problems):
-        train = problems.attempt(lambda: probe(train_loader))
-        heldout = problems.attempt(lambda: probe(heldout_loader))
-    if train is not None and settings is not None and not _online(settings):
-        problems.attempt(lambda: check_augmentation(train, settings.views))
-    if heldout is not None:
-        warn_changing_heldout(heldout)
-    labels = getattr(train, "labels", None)
-    if isinstance(labels, torch.Tensor) and given["targets"] == "ce" and labels.is_floating_point():
-        problems.add(
-            ValueError(
-                f"targets='ce' needs integer class labels, but the training labels are "
-                f"{labels.dtype}. Use targets='l2' for regression."
-            )
-        )
-    problems.raise_if_any()
-    assert settings is not None and train is not None and heldout is not None  # checked above
-    return settings, train, heldout
-
-
-def _checked_pool(
-    admission: Any,
-    unlabeled_loader: Any,
-    train_loader: DataLoader,
-    targets: str,
-    mode: str,
-    labels: Any,
-) -> Admission | None:
-    """The pool's settings, whether the training loader can carry mixed epochs, and the
-    probed training labels against the "no label" value."""
-    problems = Problems()
-    found = check_pool_settings(problems, admission, unlabeled_loader, targets, mode)
-    if found is not None:
-        problems.attempt(lambda: check_mixable(train_loader, found))
-        problems.attempt(lambda: check_no_label(labels))
-    problems.raise_if_any()
-    return found
-
-
-def _check_top_k(settings: Settings, width: int) -> None:
-    """``top_k`` must fit the model's outputs; say when it saves nothing."""
-    top_k = settings.top_k
-    if top_k is None:
-        return
-    if top_k > width:
-        raise InputError(
-            f"top_k={top_k} is more than the model's {width} outputs; use at most top_k={width}"
-        )
-    value = np.dtype(settings.store_dtype).itemsize
-    compact = top_k * (value + np.dtype(index_dtype(width)).itemsize)
-    if compact >= width * value:
-        say_once(
-            f"top_k{top_k}:{width}:{settings.store_dtype}",
-            f"top_k={top_k} stores {compact} bytes per sample and view (values and class "
-            f"indices), no fewer than the {width * value} of the full store of {width} outputs; "
-            "top_k=None keeps every output for less",
         )

@@ -21,6 +21,7 @@ from typing import Any
 
 from tqdm.auto import tqdm
 
+from . import distributed
 from .records import BaselineRecord, DecisionState, EpochEntry, GenerationRecord
 from .stopping import StopRule
 from .tb import TensorBoardLog, baseline_name
@@ -199,3 +200,20 @@ def session_metrics(records: Sequence[GenerationRecord]) -> dict[str, float]:
         metrics["test_best"] = kept["test"]
         metrics["test_gain"] = kept["test"] - first["test"]  # type: ignore[operator]
     return {k: v for k, v in metrics.items() if v is not None}
+
+
+def standard_observers(
+    run: Any, progress: bool, tensorboard: bool | str | Path, extra: Sequence[Observer]
+) -> list[Observer]:
+    """A lineage's observers: TensorBoard runs (``run.tensorboard_path`` for True), the user's
+    observers and progress lines; none but on rank 0 under a process group."""
+    if not distributed.is_main():
+        return []
+    observers: list[Observer] = []
+    if tensorboard:
+        folder = run.tensorboard_path if tensorboard is True else Path(tensorboard)
+        observers.append(TensorBoardRuns(folder))
+    observers.extend(extra)
+    if progress:
+        observers.append(ConsoleProgress())
+    return observers
