@@ -391,25 +391,39 @@ def _open(
             lineages.append(_lineage(p, run, s, quiet=quiet, fresh=args.fresh))
             fault_point("start", seed_name(s))
 
-        def finish_opening() -> None:
-            if args.fresh and not new_run:
-                _start_over(run, seeds)
-                _save_recipe(p.recipe, run)
-            elif not new_run and _baselines_changed(run, p.recipe):
-                _save_recipe(p.recipe, run)  # the saved recipe says which baselines the run has
-
-        distributed.on_rank_zero(finish_opening, f"saving the recipe in {run.root}")
+        distributed.on_rank_zero(
+            functools.partial(_finish_opening, p.recipe, run, seeds, args.fresh, new_run),
+            f"saving the recipe in {run.root}",
+        )
     except BaseException:
-        for lineage in lineages:
-            lineage.close()
-        if taken is not None:
-            taken.release()
-            if taken.created:
-                shutil.rmtree(taken.directory, ignore_errors=True)
-            elif new_run:
-                _remove_all_but_the_lock(taken.directory)
+        _undo_opening(lineages, taken, new_run)
         raise
     return run, taken, lineages
+
+
+def _finish_opening(
+    recipe: recipes.Recipe, run: RecipeRunDirectory, seeds: list[int], fresh: bool, new_run: bool
+) -> None:
+    """With ``--fresh``, the rest of the earlier run goes last; the saved recipe says which
+    baselines the run has."""
+    if fresh and not new_run:
+        _start_over(run, seeds)
+        _save_recipe(recipe, run)
+    elif not new_run and _baselines_changed(run, recipe):
+        _save_recipe(recipe, run)
+
+
+def _undo_opening(lineages: list[Lineage], taken: Claim | None, new_run: bool) -> None:
+    """After a refused or interrupted start: close the lineages, release the lock, and remove
+    what the start wrote into a directory that held no run."""
+    for lineage in lineages:
+        lineage.close()
+    if taken is not None:
+        taken.release()
+        if taken.created:
+            shutil.rmtree(taken.directory, ignore_errors=True)
+        elif new_run:
+            _remove_all_but_the_lock(taken.directory)
 
 
 def _say(message: str) -> None:
@@ -448,7 +462,12 @@ def _remove_all_but_the_lock(directory: Path) -> None:
         shutil.rmtree(entry, ignore_errors=True) if entry.is_dir() else entry.unlink()
 
 
-def _run(args: argparse.Namespace, argv: Sequence[str]) -> int:
+Opened = tuple[Plan, Launch, RecipeRunDirectory, Claim | None, list[Lineage], bool]
+
+
+def _start(args: argparse.Namespace, argv: Sequence[str]) -> Opened | int:
+    """Read the recipe, join a torchrun launch, open the run directory and build the
+    lineages; an exit code when that is refused or interrupted (nothing is left behind)."""
     launch: Launch | None = None
     try:
         p = plan(args.recipe, args.set, args.run_dir)
@@ -475,6 +494,14 @@ def _run(args: argparse.Namespace, argv: Sequence[str]) -> int:
         )
         _end(launch, wait=False)
         return EXIT_INTERRUPTED
+    return p, launch, run, taken, lineages, on_terminal
+
+
+def _run(args: argparse.Namespace, argv: Sequence[str]) -> int:
+    started = _start(args, argv)
+    if isinstance(started, int):
+        return started
+    p, launch, run, taken, lineages, on_terminal = started
     resume = _resume_command(argv)
     kept = (
         f"--fresh removed the earlier run in {run.root} before this one started; the "
