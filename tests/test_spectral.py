@@ -1,0 +1,261 @@
+"""The spectral view (filial.spectral) against outside references.
+
+The exact regime: a linear model with an unpenalised bias on fixed random Fourier features
+(Rahimi & Recht, NIPS 2007: phi(x) = sqrt(2/D) cos(W x + b), W ~ N(0, 2 gamma I),
+b ~ U[0, 2 pi]) of scikit-learn's digits, each generation solved to its ridge solution on the
+previous generation's outputs. There self-distillation is iterated kernel ridge regression
+(Mobahi, Farajtabar & Bartlett, NeurIPS 2020): each round multiplies eigencomponent i of the
+centred training outputs by d_i / (d_i + c). References: scikit-learn's ``KernelRidge`` (linear
+kernel on the centred features, centred targets; the intercept is the targets' mean) as the
+independent solver, ``numpy.linalg.eigh`` for the basis.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import torch
+from sklearn.datasets import load_digits
+from sklearn.kernel_ridge import KernelRidge
+from torch import nn
+from torch.utils.data import TensorDataset
+
+from filial import spectral
+
+RIDGE = 3.0
+GENERATIONS = 6
+CLASSES = 10
+FEATURES = 300
+
+
+def _onehot_neg_mse(outputs: torch.Tensor, labels: torch.Tensor) -> float:
+    """Minus the mean squared error against one-hot labels (a continuous metric)."""
+    target = torch.nn.functional.one_hot(labels.long(), outputs.shape[1]).to(outputs.dtype)
+    return -float((outputs - target).pow(2).mean())
+
+
+class _Fourier(nn.Module):
+    """Fixed random Fourier features (Rahimi & Recht 2007), frozen."""
+
+    def __init__(self, dim: int, width: int, gamma: float, seed: int) -> None:
+        super().__init__()
+        generator = torch.Generator().manual_seed(seed)
+        self.register_buffer("w", torch.randn(dim, width, generator=generator) * (2 * gamma) ** 0.5)
+        self.register_buffer("b", torch.rand(width, generator=generator) * 2 * np.pi)
+        self.scale = (2.0 / width) ** 0.5
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        return self.scale * torch.cos(x @ self.w + self.b)
+
+
+def _model() -> nn.Module:
+    return nn.Sequential(
+        _Fourier(64, FEATURES, gamma=0.05, seed=7), nn.Linear(FEATURES, CLASSES)
+    ).double()
+
+
+def _data() -> tuple[torch.Tensor, torch.Tensor, torch.Tensor, torch.Tensor]:
+    digits = load_digits()
+    x = torch.from_numpy(digits.data / 16.0)  # float64: the exact regime, no float32 noise
+    y = torch.from_numpy(digits.target.astype(np.int64))
+    return x[:200], y[:200], x[200:400], y[200:400]
+
+
+def _solve(model: nn.Module, x: torch.Tensor, targets: np.ndarray, ridge: float) -> None:
+    """Set the last layer to the ridge solution with an unpenalised bias (centred normal
+    equations), in float64."""
+    with torch.no_grad():
+        phi = model[0](x).double().numpy()
+    mean_phi, mean_y = phi.mean(axis=0), targets.mean(axis=0)
+    centred = phi - mean_phi
+    weight = np.linalg.solve(
+        centred.T @ centred + ridge * np.eye(phi.shape[1]), centred.T @ (targets - mean_y)
+    )
+    with torch.no_grad():
+        model[1].weight.copy_(torch.from_numpy(weight.T.copy()))
+        model[1].bias.copy_(torch.from_numpy(mean_y - mean_phi @ weight))
+
+
+def _lineage(ridge: float):
+    """The actual lineage: per generation, training and held-out outputs (float64) of the
+    model solved to the ridge solution on the previous outputs."""
+    x, y, x_held, _ = _data()
+    model = _model()
+    targets = np.eye(CLASSES)[y.numpy()]
+    train, held = [], []
+    for _ in range(GENERATIONS + 1):
+        _solve(model, x, targets, ridge)
+        with torch.no_grad():
+            targets = model(x).double().numpy()
+            held.append(model(x_held).double().numpy())
+        train.append(targets)
+    return model, train, held
+
+
+def _kernel(model: nn.Module) -> spectral.Kernel:
+    x, y, x_held, y_held = _data()
+    indices = spectral.subset_indices(len(x), 2000, seed=0)
+    features, labels = spectral.features_of(model, TensorDataset(x, y), indices, None, 64)
+    held_features, held_labels = spectral.features_of(
+        model, TensorDataset(x_held, y_held), np.arange(len(x_held)), None, 64
+    )
+    return spectral.build_kernel(
+        indices, features, labels.numpy(), held_features, held_labels.numpy()
+    )
+
+
+@pytest.fixture(scope="module")
+def exact():
+    model, train, held = _lineage(RIDGE)
+    return model, train, held, _kernel(model)
+
+
+def test_hook_reads_the_last_linear_input(exact):
+    """The default features are the input of the last nn.Linear: the Fourier features."""
+    model, _, _, kernel = exact
+    x, _, _, _ = _data()
+    with torch.no_grad():
+        phi = model[0](x).double().numpy()
+    np.testing.assert_allclose(kernel.features, phi - phi.mean(axis=0), rtol=0, atol=1e-6)
+    # The basis is numpy.linalg.eigh's of the centred Gram matrix, in descending order.
+    gram = kernel.features @ kernel.features.T
+    eigenvalues = np.linalg.eigh(gram)[0][::-1]
+    np.testing.assert_allclose(kernel.eigenvalues, np.clip(eigenvalues, 0, None), atol=1e-9)
+    np.testing.assert_allclose(
+        gram @ kernel.basis, kernel.basis * kernel.eigenvalues, rtol=0, atol=1e-8
+    )
+
+
+def test_each_generation_shrinks_component_i_by_d_over_d_plus_c(exact):
+    """Mobahi et al. 2020: the ratio of eigencomponent i between generations is d_i/(d_i+c)."""
+    _, train, _, kernel = exact
+    shrink = kernel.eigenvalues / (kernel.eigenvalues + RIDGE)
+    compared = 0
+    for g in range(1, len(train)):
+        before, after = kernel.coefficients(train[g - 1]), kernel.coefficients(train[g])
+        clear = (kernel.eigenvalues > 1e-6 * kernel.eigenvalues.max())[:, None] & (
+            np.abs(before) > 1e-6 * np.linalg.norm(before)
+        )
+        ratio = after[clear] / before[clear]
+        expected = np.broadcast_to(shrink[:, None], before.shape)[clear]
+        np.testing.assert_allclose(ratio, expected, rtol=0, atol=1e-4)
+        compared += int(clear.sum())
+    assert compared > 1000
+    assert shrink[kernel.eigenvalues > 1e-6].min() < 0.2 < 0.7 < shrink.max()
+
+
+def test_effective_count_falls_every_generation(exact):
+    _, train, _, kernel = exact
+    figures = [spectral.spectrum_figures(kernel.coefficients(t)) for t in train]
+    counts = [f["components95"] for f in figures]
+    ratios = [f["participation"] for f in figures]
+    # An integer count can pause for a generation; the participation ratio falls strictly.
+    assert all(b <= a for a, b in zip(counts, counts[1:], strict=False)), counts
+    assert counts[-1] < counts[1] < counts[0], counts
+    assert all(b < a for a, b in zip(ratios, ratios[1:], strict=False)), ratios
+    # The leading band's share rises as the small components die.
+    tops = [f["top10"] for f in figures]
+    assert all(b > a for a, b in zip(tops, tops[1:], strict=False)), tops
+    for f in figures:
+        assert f["top1"] <= f["top10"] <= f["top50"] <= 1.0 + 1e-12
+        assert f["rest"] == pytest.approx(1.0 - f["top50"])
+
+
+def _sklearn_lineage(kernel: spectral.Kernel, ridge: float) -> list[np.ndarray]:
+    """Iterated scikit-learn KernelRidge (linear kernel, centred features and targets)."""
+    targets = np.eye(CLASSES)[kernel.labels]
+    held_centred = kernel.heldout_features - kernel.mean
+    held = []
+    for _ in range(GENERATIONS + 1):
+        mean = targets.mean(axis=0)
+        fitted = KernelRidge(alpha=ridge, kernel="linear").fit(kernel.features, targets - mean)
+        held.append(fitted.predict(held_centred) + mean)
+        targets = fitted.predict(kernel.features) + mean
+    return held
+
+
+def test_forecast_matches_the_actual_lineage(exact):
+    """The surrogate, with c fitted from generation 0's training fit alone, predicts each
+    generation's held-out metric of the actual lineage to 1e-4; scikit-learn's KernelRidge
+    agrees with both."""
+    _, train, held, kernel = exact
+    _, y, _, y_held = _data()
+    fit0 = _onehot_neg_mse(torch.from_numpy(train[0]).float(), y)
+    found = spectral.forecast(kernel, _onehot_neg_mse, fit0, GENERATIONS, CLASSES)
+    assert found["ridge"] == pytest.approx(RIDGE, rel=1e-3)
+    actual = [_onehot_neg_mse(torch.from_numpy(h).float(), y_held) for h in held]
+    reference = [
+        _onehot_neg_mse(torch.from_numpy(h).float(), y_held)
+        for h in _sklearn_lineage(kernel, RIDGE)
+    ]
+    np.testing.assert_allclose(found["fixed"]["heldout"], actual, rtol=0, atol=1e-4)
+    np.testing.assert_allclose(reference, actual, rtol=0, atol=1e-6)
+    assert found["fixed"]["best"] == int(np.argmax(actual))
+    # The energies of the centred outputs, and the collapse round, are the actual ones.
+    energies = [float(np.square(t - t.mean(axis=0)).sum()) for t in train]
+    np.testing.assert_allclose(found["fixed"]["energy"], energies, rtol=1e-3)
+    threshold = found["collapse_share"] * energies[0]
+    collapse = next((g for g, e in enumerate(energies) if g > 0 and e <= threshold), None)
+    assert collapse is not None and 0 < collapse <= GENERATIONS
+    assert found["fixed"]["collapse"] == collapse
+
+
+def test_refit_regime_holds_the_residual_and_collapses():
+    """The second regime of Mobahi et al. 2020: c_t is refitted so that each round's squared
+    residual against its own targets equals round 0's; c_t grows, and once the targets hold no
+    more energy than that residual the fit is the constant (collapse)."""
+    model, train, _ = _lineage(0.3)
+    kernel = _kernel(model)
+    _, y, _, _ = _data()
+    fit0 = _onehot_neg_mse(torch.from_numpy(train[0]).float(), y)
+    found = spectral.forecast(kernel, _onehot_neg_mse, fit0, 12, CLASSES)
+    refit = found["refit"]
+    ridges = [r for r in refit["ridges"] if r is not None]
+    assert all(b > a for a, b in zip(ridges, ridges[1:], strict=False)), ridges
+    assert refit["collapse"] is not None
+    assert refit["energy"][-1] == 0.0
+    fixed = found["fixed"]["collapse"]
+    assert fixed is None or refit["collapse"] <= fixed
+
+
+def test_kernel_round_trips_and_refuses_a_damaged_file(tmp_path, exact):
+    kernel = exact[3]
+    spectral.save_kernel(tmp_path / "spectral", kernel)
+    loaded = spectral.load_kernel(tmp_path / "spectral")
+    np.testing.assert_array_equal(loaded.basis, kernel.basis)
+    np.testing.assert_array_equal(loaded.indices, kernel.indices)
+    with open(tmp_path / "spectral" / "basis.npy", "r+b") as handle:
+        handle.seek(-8, 2)
+        handle.write(b"\x00" * 8)
+    with pytest.raises(ValueError, match="sha256"):
+        spectral.load_kernel(tmp_path / "spectral")
+
+
+def test_subset_rows_collects_only_the_subset_in_order():
+    indices = np.array([1, 4, 7])
+    rows = spectral.SubsetRows(indices, views=2)
+    outputs = torch.arange(20.0).reshape(10, 2)  # codes 0..9 = sample i * 2 + view
+    rows.add(np.arange(6), outputs[:6], torch.arange(6))
+    rows.add(np.arange(6, 10), outputs[6:], torch.arange(6, 10))
+    rows.add(np.arange(10, 16), torch.arange(100.0, 112.0).reshape(6, 2), torch.arange(10, 16))
+    got, labels = rows.result()
+    # sample 1 view 0 = code 2, sample 4 view 0 = code 8, sample 7 view 0 = code 14
+    np.testing.assert_array_equal(got, [[4.0, 5.0], [16.0, 17.0], [108.0, 109.0]])
+    np.testing.assert_array_equal(labels, [2, 8, 14])
+
+
+def test_figures_of_known_energies():
+    """Bands and counts on hand-made energies (arithmetic)."""
+    energies = np.zeros(100)
+    energies[0], energies[5], energies[60] = 0.5, 0.3, 0.2
+    figures = spectral.spectrum_figures(np.sqrt(energies)[:, None])
+    assert figures["top1"] == pytest.approx(0.5)
+    assert figures["top10"] == pytest.approx(0.8)
+    assert figures["top50"] == pytest.approx(0.8)
+    assert figures["rest"] == pytest.approx(0.2)
+    assert figures["components95"] == 3
+    assert figures["participation"] == pytest.approx(1.0 / (0.25 + 0.09 + 0.04))
+    assert spectral.subset_indices(1000, 50, seed=3).tolist() == sorted(
+        spectral.subset_indices(1000, 50, seed=3).tolist()
+    )
+    assert len(set(spectral.subset_indices(1000, 50, seed=3).tolist())) == 50
