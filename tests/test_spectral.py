@@ -259,3 +259,79 @@ def test_figures_of_known_energies():
         spectral.subset_indices(1000, 50, seed=3).tolist()
     )
     assert len(set(spectral.subset_indices(1000, 50, seed=3).tolist())) == 50
+
+
+@pytest.mark.slow
+def test_lineage_records_the_spectrum_and_its_forecast(tmp_path):
+    """A real l2 lineage in the exact regime (float32 model and store, shuffled gen.loader):
+    the recorded eigencomponents shrink by d_i / (d_i + c) per generation (Mobahi et al. 2020),
+    the forecast in generation 0's record predicts every later record's held-out metric to 1e-4,
+    and its collapse round is the one the records show."""
+    from torch.utils.data import DataLoader
+
+    import filial
+
+    x, y, x_held, y_held = (t.float() if t.is_floating_point() else t for t in _data())
+    ridge, generations = RIDGE, 4
+    train = DataLoader(TensorDataset(x, y), batch_size=32, shuffle=True)
+    held = DataLoader(TensorDataset(x_held, y_held), batch_size=64)
+
+    def make_model() -> nn.Module:
+        return nn.Sequential(
+            _Fourier(64, FEATURES, gamma=0.05, seed=7), nn.Linear(FEATURES, CLASSES)
+        )
+
+    lineage = filial.Lineage(
+        make_model,
+        train,
+        held,
+        run_dir=tmp_path / "run",
+        targets="l2",
+        store_dtype="float32",
+        metric=_onehot_neg_mse,
+        max_generations=generations,
+        patience=generations + 1,
+        spectrum_samples=2000,
+        progress=False,
+        tensorboard=False,
+    )
+    for gen in lineage:
+        phi, wanted = [], []
+        for inputs, labels, targets in gen.loader:
+            with torch.no_grad():
+                phi.append(gen.model[0](inputs).double())
+            wanted.append(
+                np.eye(CLASSES)[labels.numpy()] if targets is None else targets.double().numpy()
+            )
+        features, goal = torch.cat(phi).numpy(), np.concatenate(wanted)
+        mean_phi, mean_y = features.mean(axis=0), goal.mean(axis=0)
+        centred = features - mean_phi
+        weight = np.linalg.solve(
+            centred.T @ centred + ridge * np.eye(FEATURES), centred.T @ (goal - mean_y)
+        )
+        with torch.no_grad():
+            gen.model[1].weight.copy_(torch.from_numpy(weight.T.copy()))
+            gen.model[1].bias.copy_(torch.from_numpy(mean_y - mean_phi @ weight))
+        gen.finish(gen.model)
+    records = lineage.result.records
+    assert len(records) == generations + 1
+    kernel = spectral.load_kernel(tmp_path / "run" / spectral.FOLDER)
+    shrink = kernel.eigenvalues / (kernel.eigenvalues + ridge)
+    for g in range(1, generations + 1):
+        before = spectral.load_coefficients(tmp_path / "run" / spectral.FOLDER, g - 1)
+        after = spectral.load_coefficients(tmp_path / "run" / spectral.FOLDER, g)
+        clear = (kernel.eigenvalues > 1e-4 * kernel.eigenvalues.max())[:, None] & (
+            np.abs(before) > 1e-2 * np.linalg.norm(before)
+        )
+        assert clear.sum() > 30
+        expected = np.broadcast_to(shrink[:, None], before.shape)[clear]
+        np.testing.assert_allclose(after[clear] / before[clear], expected, rtol=0, atol=1e-4)
+    found = records[0]["forecast"]
+    assert found["ridge"] == pytest.approx(ridge, rel=1e-2)
+    np.testing.assert_allclose(
+        found["fixed"]["heldout"], [r["heldout"] for r in records], rtol=0, atol=1e-4
+    )
+    counts = [r["spectrum"]["components95"] for r in records]
+    assert all(b <= a for a, b in zip(counts, counts[1:], strict=False)) and counts[-1] < counts[0]
+    actual = spectral.recorded_collapse(records, found["collapse_share"])
+    assert actual is not None and found["fixed"]["collapse"] == actual

@@ -371,7 +371,9 @@ def train_baseline(
         return saved
 
     seed_generation(inputs.seed, 0, inputs.train_loader)
-    baseline_inputs = dataclasses.replace(inputs, run=run, write_targets=False, loss=loss)
+    baseline_inputs = dataclasses.replace(
+        inputs, run=run, write_targets=False, loss=loss, spectral=None
+    )
     gen = Generation(0, model_fn(), baseline_inputs, conclude)
     fit = make_fit(epochs)
     if keeper is not None:

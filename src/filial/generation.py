@@ -37,6 +37,7 @@ from .observers import Observer
 from .records import EpochEntry, GenerationRecord, mode_of
 from .rundir import RunDirectory
 from .seeding import Stream, stream_seed
+from .spectral import SpectralView
 from .store import TargetStore
 from .teacher import FigureSpec, OnlineTeacherLoader, StoreSpec, TeacherPass, training_pass
 
@@ -57,6 +58,8 @@ class GenerationInputs:
     replay: Replay | None = None  # the training data augment: fetch (sample, view) under seeds
     # Refuses a finished model that is not what model_fn builds (models.ModelChecks.finished).
     check_finished: Callable[[nn.Module, int], None] | None = None
+    # The spectral view (filial.spectral): its consumer joins the teacher pass; None: no view.
+    spectral: SpectralView | None = None
 
 
 @dataclass
@@ -231,6 +234,7 @@ class Generation:
             seed,
             store=(inputs.store, self.directory) if inputs.write_targets else None,
             figures=FigureSpec(loss.kind, loss.temperature, inputs.metric),
+            extra=[] if inputs.spectral is None else [inputs.spectral.consumer()],
             fault=fault,
         )
         try:
@@ -278,6 +282,10 @@ class Generation:
         if not diverged:
             record.update(figures.statistics)
         self._save(model, passed, heldout, record)
+        if inputs.spectral is not None and not diverged:
+            started = time.perf_counter()
+            record.update(inputs.spectral.measure(self.index, model, passed.extra[0], record))
+            record["spectrum_seconds"] = time.perf_counter() - started
         record["epochs"] = sorted(self.history, key=lambda entry: entry["epoch"])
         record["passes"] = self._passes.count  # over gen.loader, by the user's loop or fit
         record["batches"] = self._passes.batches

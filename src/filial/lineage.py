@@ -15,6 +15,7 @@ generation without one. The other rooms: :mod:`filial.settings` (which settings 
 
 from __future__ import annotations
 
+import dataclasses
 import functools
 import json
 import logging
@@ -28,7 +29,7 @@ import torch
 from torch import nn
 from torch.utils.data import DataLoader, DistributedSampler
 
-from . import distributed
+from . import distributed, spectral
 from ._io import atomic_write
 from .baselines import (
     DEFAULT_LABEL_SMOOTHING,
@@ -50,7 +51,8 @@ from .rundir import LineageState, RunDirectory
 from .seeding import samplers_of, seed_generation
 from .settings import DataFacts, Settings, saved_settings
 from .space import check_store_fits
-from .stopping import StopRule
+from .spectral import FeatureFn, SpectralOptions, SpectralView
+from .stopping import Decision, StopRule
 from .store import TargetStore, index_dtype
 from .teacher import StoreSpec, TeacherStores
 
@@ -124,6 +126,13 @@ class Lineage:
     Training data that augment at random (from torch's, Python's or numpy's global generators)
     are replayed for the students: each sample comes in ``views`` fixed augmented views, each with
     its own cached target, and every epoch draws one per sample (see :class:`filial.data.Replay`).
+
+    ``spectrum_samples`` (default 0: off) turns on the spectral view (:mod:`filial.spectral`)
+    on a fixed subset of that many training samples: every record gets a ``spectrum`` (which
+    eigencomponents of generation 0's feature kernel the outputs hold), and generation 0's a
+    ``forecast`` of the generations to come. ``spectrum_features(model, inputs)`` replaces the
+    default features (the input of the model's last ``nn.Linear``). ``spectrum_stop=True`` lets
+    the lineage stop once the forecast's best generation is trained (never by default).
     """
 
     def __init__(
@@ -150,6 +159,9 @@ class Lineage:
         progress: bool = True,
         tensorboard: bool | str | Path = True,
         observers: Sequence[Observer] = (),
+        spectrum_samples: int = 0,
+        spectrum_stop: bool = False,
+        spectrum_features: FeatureFn | None = None,
     ) -> None:
         # Long only for its arguments: each is checked elsewhere, and the rooms are built here.
         settings, train, heldout = _checked_arguments(
@@ -167,6 +179,8 @@ class Lineage:
                 "store_dtype": store_dtype,
                 "top_k": top_k,
                 "teacher_mode": teacher_mode,
+                "spectrum_samples": spectrum_samples,
+                "spectrum_stop": spectrum_stop,
                 "seed": seed,
             },
         )
@@ -208,6 +222,9 @@ class Lineage:
             replay=replay,
             check_finished=self._checks.finished,
         )
+        self._inputs = dataclasses.replace(
+            self._inputs, spectral=self._spectral_view(settings, spectrum_features)
+        )
         self._teachers = TeacherStores(
             self._run, model_fn, train_loader, replay, spec, settings.seed
         )
@@ -220,6 +237,24 @@ class Lineage:
         self._state.open(fresh)
         if self._state.resumed:
             self._observers.resumed(self._run.root, self._state.records, self._state.decision)
+
+    def _spectral_view(
+        self, settings: Settings, feature_fn: FeatureFn | None
+    ) -> SpectralView | None:
+        """The spectral view when ``spectrum_samples`` asks for one (see :mod:`filial.spectral`)."""
+        if not settings.spectrum_samples:
+            return None
+        inputs = self._inputs
+        return SpectralView(
+            self._run.root / spectral.FOLDER,
+            SpectralOptions(settings.spectrum_samples, settings.spectrum_stop, feature_fn),
+            len(inputs.train_loader.dataset),  # type: ignore[arg-type]
+            settings.views if inputs.replay is not None else 1,
+            settings.seed,
+            (inputs.train_loader, inputs.heldout_loader),
+            inputs.metric,
+            settings.max_generations,
+        )
 
     def _observers_for(
         self, progress: bool, tensorboard: bool | str | Path, extra: Sequence[Observer]
@@ -470,7 +505,7 @@ class Lineage:
             self._teachers.fresh = TargetStore(gen.directory)
         if self._state.resumed:
             _warn_about_other_passes(records, record)
-        decision = self.rule.decide([*records, record])
+        decision = self._forecast_stop(self.rule.decide([*records, record]), [*records, record])
         if decision.stop:
             record["stop"] = {"reason": decision.reason, "best": decision.best, **decision.detail}  # type: ignore[typeddict-item]
         state: DecisionState = {
@@ -482,6 +517,19 @@ class Lineage:
         self._state.commit(record, state)
         self._observers.generation_ended(record, self._state.records, state)
         return record
+
+
+    def _forecast_stop(self, decision: Decision, records: list[GenerationRecord]) -> Decision:
+        """With ``spectrum_stop``: stop once the spectral forecast's best generation (c held
+        fixed) is trained, unless the rule stopped already. The kept generation is still the
+        held-out best."""
+        if decision.stop or not self.settings.get("spectrum_stop"):
+            return decision
+        predicted = records[0].get("forecast", {}).get("fixed", {}).get("best")
+        generation = records[-1]["generation"]
+        if predicted is None or generation < predicted:
+            return decision
+        return Decision(True, "forecast", decision.best, {"forecast_best": int(predicted)})
 
 
 def _warn_about_other_passes(records: list[GenerationRecord], newest: GenerationRecord) -> None:

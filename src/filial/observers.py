@@ -104,6 +104,21 @@ def figure(value: Any) -> str:
     return f"{value:.4f}"
 
 
+def forecast_line(found: dict[str, Any]) -> str:
+    """The spectral forecast in one line (see :func:`filial.spectral.forecast`)."""
+    fixed, refit = found["fixed"], found["refit"]
+
+    def collapse(regime: dict[str, Any]) -> str:
+        return "none in range" if regime["collapse"] is None else f"at {regime['collapse']}"
+
+    return (
+        f"spectral forecast (kernel ridge, c = {found['ridge']:.3g}): best generation "
+        f"{fixed['best']} (held-out {figure(fixed['heldout'][fixed['best']])}), collapse "
+        f"{collapse(fixed)}; with c refitted each round: best {refit['best']}, collapse "
+        f"{collapse(refit)}"
+    )
+
+
 class ConsoleProgress(Observer):
     """One line per finished generation on stderr, through tqdm so open bars survive."""
 
@@ -130,11 +145,20 @@ class ConsoleProgress(Observer):
             if decision["stop"]
             else ""
         )
+        spectrum = record.get("spectrum")
+        shape = (
+            f", 95 % of output energy in {spectrum['components95']} components (top 10 %: "
+            f"{spectrum['top10']:.0%})"
+            if spectrum is not None
+            else ""
+        )
         self.say(
             f"generation {record['generation']}: held-out {figure(record['heldout'])}, train vs "
-            f"labels {figure(record['train'])}, ensemble {figure(record['ensemble'])}, "
-            f"{record['seconds']:.1f} s{stop}"
+            f"labels {figure(record['train'])}, ensemble {figure(record['ensemble'])}"
+            f"{shape}, {record['seconds']:.1f} s{stop}"
         )
+        if "forecast" in record:
+            self.say(forecast_line(record["forecast"]))
 
     def baseline_ended(self, record: BaselineRecord, records: Sequence[GenerationRecord]) -> None:
         name = baseline_name(record)

@@ -527,11 +527,17 @@ class SpectralView:
         train_size: int,
         views: int,
         seed: int,
+        loaders: tuple[DataLoader, DataLoader],
+        metric: Metric,
+        generations: int,
     ) -> None:
         self.folder = folder
         self.options = options
         self.views = views
         self.seed = seed
+        self.loaders = loaders
+        self.metric = metric
+        self.generations = generations
         self.indices = subset_indices(train_size, options.samples, seed)
         self._kernel: Kernel | None = None
 
@@ -565,6 +571,26 @@ class SpectralView:
         save_kernel(self.folder, kernel)
         self._kernel = kernel
         return kernel
+
+    def measure(
+        self,
+        index: int,
+        model: nn.Module,
+        rows: tuple[np.ndarray, np.ndarray] | None,
+        record: Any,
+    ) -> dict[str, Any]:
+        """The record's fields of a finished generation (rank 0): its ``spectrum``, and after
+        generation 0 also the kernel (built and saved) and the ``forecast``."""
+        assert rows is not None  # rank 0 holds the gathered subset rows
+        outputs = rows[0]
+        found: dict[str, Any] = {}
+        if index == 0:
+            kernel = self.build(model, *self.loaders)
+            found["forecast"] = forecast(
+                kernel, self.metric, record["train"], self.generations, outputs.shape[1]
+            )
+        found["spectrum"] = self.figures(index, outputs)
+        return found
 
     def figures(self, index: int, rows: np.ndarray) -> dict[str, Any]:
         """The record's ``spectrum`` of a generation whose subset outputs are ``rows``."""
