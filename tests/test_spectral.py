@@ -12,6 +12,8 @@ independent solver, ``numpy.linalg.eigh`` for the basis.
 
 from __future__ import annotations
 
+from pathlib import Path
+
 import numpy as np
 import pytest
 import torch
@@ -335,3 +337,42 @@ def test_lineage_records_the_spectrum_and_its_forecast(tmp_path):
     assert all(b <= a for a, b in zip(counts, counts[1:], strict=False)) and counts[-1] < counts[0]
     actual = spectral.recorded_collapse(records, found["collapse_share"])
     assert actual is not None and found["fixed"]["collapse"] == actual
+    # The report's column and forecast table, the API and the verb read the same figures.
+    from filial import cli, report
+
+    summary = report.summarize(tmp_path / "run")
+    compared = summary["lineages"][0]["forecast"]
+    assert compared["best"]["fixed"] == found["fixed"]["best"]
+    assert compared["collapse"]["actual"] == actual
+    text = report.format_report(summary)
+    assert "95% in" in text and "spectral forecast from generation 0" in text
+    again = filial.forecast_run(tmp_path / "run", generations=2, metric=_onehot_neg_mse)
+    np.testing.assert_allclose(
+        [row["fixed"] for row in again["rows"]], found["fixed"]["heldout"][:3], atol=1e-9
+    )
+    assert cli.main(["forecast", str(tmp_path / "run")]) == 2  # its own metric: needs metric=
+
+
+def test_settings_of_the_view_are_checked():
+    """spectrum_stop needs the view; sizes are counts (recipe keys and Lineage alike)."""
+    from filial import recipe
+    from filial.cli import generation_settings
+    from filial.errors import Problems
+    from filial.settings import Settings
+
+    problems = Problems()
+    assert Settings.parse(problems, spectrum_stop=True) is None
+    assert "spectrum_samples" in str(problems.found[0])
+    problems = Problems()
+    assert Settings.parse(problems, spectrum_samples=-1) is None
+    parsed = Settings.parse(Problems(), spectrum_samples=500, spectrum_stop=True)
+    assert parsed is not None and parsed.spectrum_samples == 500
+    path = Path(__file__).resolve().parents[1] / "recipes" / "digits_l2.toml"
+    given = recipe.load(
+        path, ["generations.spectrum_samples=300", "generations.spectrum_stop=true"]
+    )
+    settings = generation_settings(given)
+    assert settings["spectrum_samples"] == 300 and settings["spectrum_stop"] is True
+    assert generation_settings(recipe.load(path))["spectrum_samples"] == 0  # off by default
+    with pytest.raises(recipe.RecipeError, match="true or false"):
+        recipe.load(path, ["generations.spectrum_stop=1"])

@@ -8,6 +8,7 @@ stop helping, and the best student is kept. Start with :class:`Lineage`.
 from .fit import fit_epochs
 from .generation import Generation
 from .lineage import Lineage, Result
+from .spectral import forecast_run
 from .stopping import Decision, StopRule
 from .store import TargetStore
 
@@ -19,5 +20,6 @@ __all__ = [
     "StopRule",
     "TargetStore",
     "fit_epochs",
+    "forecast_run",
 ]
 __version__ = "0.1.0"

@@ -180,6 +180,15 @@ _SCHEMA: dict[str, dict[str, Field]] = {
         "store_dtype": Field("choice", "float16", STORE_DTYPES),
         "top_k": Field("int", 0, minimum=0, help="0: every output; k: the k largest (ce only)"),
         "teacher": Field("choice", "cached", ("cached", "online")),
+        "spectrum_samples": Field(
+            "int",
+            0,
+            minimum=0,
+            help="0: no spectral view; m: its kernel on m training samples (e.g. 2000)",
+        ),
+        "spectrum_stop": Field(
+            "bool", False, help="stop once the spectral forecast's best generation is trained"
+        ),
     },
 }
 _FACTORY_SECTIONS = ("data", "model")
@@ -202,6 +211,8 @@ def _check_kind(name: str, field: Field, value: Any) -> Any:
         if not math.isfinite(value):
             raise RecipeError(f"{name} should be a finite number, but got {value!r}")
         return float(value)
+    if field.kind == "bool" and not isinstance(value, bool):
+        raise RecipeError(f"{name} should be true or false, but got {_describe(value)}")
     if field.kind == "str" and not isinstance(value, str):
         raise RecipeError(f"{name} should be a string, but got {_describe(value)}")
     if field.kind == "choice" and value not in field.choices:

@@ -32,6 +32,7 @@ from .reading import (
 )
 from .records import is_number
 from .rundir import HELDOUT_FILE, RECIPE_FILE, STATE_FILE, RecipeRunDirectory, RunDirectory
+from .spectral import compare_forecast
 
 _REASONS = {
     "no-gain": (
@@ -41,6 +42,10 @@ _REASONS = {
     "collapse": "the predictions degenerated ({why}), so the lineage stopped",
     "diverged": "generation {generation}'s loss or outputs were not finite; it is never kept",
     "max-generations": "the last allowed generation (max_generations={max_generations}) finished",
+    "forecast": (
+        "the spectral forecast's best generation ({forecast_best}) was trained "
+        "(spectrum_stop=True)"
+    ),
 }
 # Records written before the stop detail named the last gain.
 _NO_GAIN_BEFORE = (
@@ -305,6 +310,7 @@ def _lineage(
         "gain": first["plain"] if first is not None else None,
         "baseline": baselines.get("matched"),
         "baselines": baselines,
+        "forecast": compare_forecast(records),
         **evidence,
     }
     summary["verdict"] = verdict(summary)
@@ -479,8 +485,10 @@ def generation_table(
     if targets is None:
         targets = "ce" if any("target_entropy" in r for r in records) else "l2"
     column = "target_entropy" if targets == "ce" else "output_norm"
+    spectra = any("spectrum" in r for r in records)
     header = f"{'gen':>4} {'held-out':>9} {'test':>7} {'train':>7} {'ensemble':>9} "
     header += f"{column.replace('_', ' '):>15} {'agree':>6} {'seconds':>8}"
+    header += f" {'95% in':>7}" if spectra else ""
     lines = [header]
 
     def cell(value: Any, width: int) -> str:
@@ -493,9 +501,49 @@ def generation_table(
         lines.append(
             f"{r['generation']:>4} {cell(r['heldout'], 9)} {cell(r['test'], 7)} "
             f"{cell(r['train'], 7)} {cell(r['ensemble'], 9)} {cell(r.get(column), 15)} "
-            f"{cell(r['agreement'], 6)} {r['seconds']:>8.2f}{mark}"
+            f"{cell(r['agreement'], 6)} {r['seconds']:>8.2f}{_components(r, spectra)}{mark}"
         )
     return "\n".join(lines)
+
+
+def _components(record: Mapping[str, Any], spectra: bool) -> str:
+    """The spectral column: the fewest eigencomponents holding 95 % of the output energy."""
+    if not spectra:
+        return ""
+    spectrum = record.get("spectrum")
+    return f" {spectrum['components95']:>7}" if spectrum else f" {'-':>7}"
+
+
+def forecast_lines(found: dict[str, Any] | None) -> list[str]:
+    """The spectral forecast's table beside the run (:func:`filial.spectral.compare_forecast`)."""
+    if found is None:
+        return []
+    out = [
+        f"spectral forecast from generation 0 (kernel ridge on its features, c = "
+        f"{found['ridge']:.3g}; held-out metric per generation)",
+        f"{'gen':>4} {'c fixed':>9} {'c refit':>9} {'actual':>9}",
+    ]
+
+    def cell(value: Any) -> str:
+        return f"{value:>9.4f}" if is_number(value) else f"{'-':>9}"
+
+    for row in found["rows"]:
+        out.append(
+            f"{row['generation']:>4} {cell(row['fixed'])} {cell(row['refit'])} "
+            f"{cell(row['actual'])}"
+        )
+    best, collapse = found["best"], found["collapse"]
+
+    def gen(value: Any) -> str:
+        return "none" if value is None else str(value)
+
+    out.append(
+        f"best generation: forecast {gen(best['fixed'])} (c refit {gen(best['refit'])}), "
+        f"actual {gen(best['actual'])} of 0-{gen(found['trained'])}; collapse: forecast "
+        f"{gen(collapse['fixed'])} (c refit {gen(collapse['refit'])}), recorded "
+        f"{gen(collapse['actual'])}"
+    )
+    return out
 
 
 def _signed(value: float) -> str:
@@ -573,6 +621,7 @@ def _matched_shows(x: dict[str, Any], record: Mapping[str, Any]) -> str:
 def _lineage_lines(x: dict[str, Any]) -> list[str]:
     out = ["", f"seed {x['seed']} ({x['targets']} targets, {x['lineage_dir']})"]
     out.append(generation_table(x["records"], x["best"], x["targets"]))
+    out.extend(forecast_lines(x.get("forecast")))
     out.append(f"stopped: {x['stop_in_words']}")
     best = x["best"]
     if best is not None:

@@ -393,6 +393,81 @@ def recorded_collapse(records: Sequence[dict[str, Any]], share: float | None) ->
     return None
 
 
+def compare_forecast(records: Sequence[Any]) -> dict[str, Any] | None:
+    """Generation 0's forecast beside what the run then did: per generation the predicted
+    held-out metric in both regimes and the recorded one, the best and collapse generations of
+    each (the recorded best over the finished generations; the recorded collapse from the
+    spectra, :func:`recorded_collapse`). None without a forecast."""
+    if not records or "forecast" not in records[0]:
+        return None
+    found = records[0]["forecast"]
+    fixed, refit = found["fixed"], found["refit"]
+    actual = {int(r["generation"]): r.get("heldout") for r in records}
+    rows = [
+        {
+            "generation": g,
+            "fixed": fixed["heldout"][g],
+            "refit": refit["heldout"][g],
+            "actual": actual.get(g),
+        }
+        for g in range(len(fixed["heldout"]))
+    ]
+    scored = {g: v for g, v in actual.items() if isinstance(v, (int, float))}
+    real_best = max(scored, key=lambda g: (scored[g], -g)) if scored else None
+    return {
+        "ridge": found["ridge"],
+        "rows": rows,
+        "best": {"fixed": fixed["best"], "refit": refit["best"], "actual": real_best},
+        "collapse": {
+            "fixed": fixed["collapse"],
+            "refit": refit["collapse"],
+            "actual": recorded_collapse(list(records), found.get("collapse_share")),
+        },
+        "trained": max(actual) if actual else None,
+    }
+
+
+def forecast_run(
+    lineage_dir: str | Path,
+    *,
+    generations: int | None = None,
+    metric: Metric | None = None,
+) -> dict[str, Any]:
+    """The spectral forecast of a lineage whose generation 0 is finished, beside what it then
+    did (:func:`compare_forecast`), from its run directory alone (``RUN/spectral/`` and
+    ``lineage.json``; no model is built). ``generations`` (default: the run's
+    ``max_generations``) recomputes it over that many generations; a run scored with a metric
+    of its own needs that ``metric`` to recompute."""
+    from .metrics import default_metric
+    from .reading import read_state
+    from .rundir import RunDirectory
+
+    run = RunDirectory(lineage_dir)
+    state = read_state(run.state_path)
+    records, settings = state["records"], state["settings"]
+    if not records or records[0].get("diverged") or records[0].get("train") is None:
+        raise InputError(f"{run.root}: generation 0 has not finished (or diverged); run it first")
+    if not settings.get("spectrum_samples"):
+        raise InputError(
+            f"{run.root} ran without the spectral view; run it with spectrum_samples=2000 "
+            "(recipe key generations.spectrum_samples) to forecast"
+        )
+    kernel = load_kernel(run.root / FOLDER)
+    if metric is None and settings.get("metric") != "default":
+        raise InputError(
+            f"{run.root} was scored with the metric {settings.get('metric')}; pass it as "
+            "metric= to recompute its forecast"
+        )
+    metric = metric or default_metric(torch.from_numpy(kernel.labels))
+    width = load_coefficients(run.root / FOLDER, 0)
+    assert width is not None, "generation 0's eigencomponents are written with its record"
+    count = settings["max_generations"] if generations is None else int(generations)
+    found = forecast(kernel, metric, records[0]["train"], count, width.shape[1])
+    compared = compare_forecast([{**records[0], "forecast": found}, *records[1:]])
+    assert compared is not None
+    return compared
+
+
 # -- files -----------------------------------------------------------------------------------
 
 
