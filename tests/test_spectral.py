@@ -295,7 +295,7 @@ def test_lineage_records_the_spectrum_and_its_forecast(tmp_path):
         patience=generations + 1,
         spectrum_samples=2000,
         progress=False,
-        tensorboard=False,
+        tensorboard=True,
     )
     for gen in lineage:
         phi, wanted = [], []
@@ -351,6 +351,27 @@ def test_lineage_records_the_spectrum_and_its_forecast(tmp_path):
         [row["fixed"] for row in again["rows"]], found["fixed"]["heldout"][:3], atol=1e-9
     )
     assert cli.main(["forecast", str(tmp_path / "run")]) == 2  # its own metric: needs metric=
+
+    # TensorBoard, read back with its own EventAccumulator: per-band curves over generations,
+    # a histogram per generation, and the forecast's held-out run beside the generations'.
+    from tensorboard.backend.event_processing.event_accumulator import EventAccumulator
+
+    def accumulator(run: str) -> EventAccumulator:
+        found = EventAccumulator(
+            str(tmp_path / "run" / "tb" / run), size_guidance={"histograms": 0}
+        )
+        found.Reload()
+        return found
+
+    shown = accumulator("spectrum")
+    band = sorted(shown.Scalars("spectrum/energy share, top 10 %"), key=lambda e: e.step)
+    assert [e.step for e in band] == list(range(generations + 1))
+    assert [e.value for e in band] == pytest.approx([r["spectrum"]["top10"] for r in records])
+    histograms = sorted(shown.Histograms("spectrum/energy by eigen-index"), key=lambda h: h.step)
+    assert [h.step for h in histograms] == list(range(generations + 1))
+    assert histograms[0].histogram_value.num == pytest.approx(1.0)
+    predicted = accumulator("forecast").Scalars("generation/held-out")
+    assert [e.value for e in predicted] == pytest.approx(found["fixed"]["heldout"], abs=1e-6)
 
 
 def test_settings_of_the_view_are_checked():

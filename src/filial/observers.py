@@ -22,6 +22,8 @@ from typing import Any
 from tqdm.auto import tqdm
 
 from .records import BaselineRecord, DecisionState, EpochEntry, GenerationRecord
+from .spectral import FOLDER as SPECTRAL_FOLDER
+from .spectral import load_coefficients
 from .stopping import StopRule
 from .tb import TensorBoardLog, baseline_name
 
@@ -184,14 +186,20 @@ class TensorBoardRuns(Observer):
     def __init__(self, folder: str | os.PathLike[str], *, alone: bool = True) -> None:
         self.log = TensorBoardLog(folder, alone=alone)
         self.settings: dict[str, Any] = {}
+        self.run_dir: Path | None = None
 
     def attached(self, run_dir: Path, settings: dict[str, Any]) -> None:
         self.settings = {key: settings[key] for key in _HPARAMS}
+        self.run_dir = run_dir
 
     def generation_ended(
         self, record: GenerationRecord, records: Sequence[GenerationRecord], decision: DecisionState
     ) -> None:
         self.log.generation(record, records[0], records=records)
+        if "spectrum" in record and self.run_dir is not None:
+            found = load_coefficients(self.run_dir / SPECTRAL_FOLDER, record["generation"])
+            energies = None if found is None else (found**2).sum(axis=1)
+            self.log.spectrum(record, energies)
         if decision["stop"]:
             self.log.session(self.settings, session_metrics(records))
             self.log.close()
