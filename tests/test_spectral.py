@@ -13,6 +13,7 @@ independent solver, ``numpy.linalg.eigh`` for the basis.
 from __future__ import annotations
 
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pytest
@@ -263,18 +264,16 @@ def test_figures_of_known_energies():
     assert len(set(spectral.subset_indices(1000, 50, seed=3).tolist())) == 50
 
 
-@pytest.mark.slow
-def test_lineage_records_the_spectrum_and_its_forecast(tmp_path):
-    """A real l2 lineage in the exact regime (float32 model and store, shuffled gen.loader):
-    the recorded eigencomponents shrink by d_i / (d_i + c) per generation (Mobahi et al. 2020),
-    the forecast in generation 0's record predicts every later record's held-out metric to 1e-4,
-    and its collapse round is the one the records show."""
+def _exact_lineage(run_dir: Path, generations: int, noise: float = 0.0, **settings: Any) -> Any:
+    """A float32 l2 lineage of the Fourier-feature model with the spectral view (``noise``:
+    that share of training labels flipped, filial.demo's symmetric noise)."""
     from torch.utils.data import DataLoader
 
     import filial
+    from filial.demo import symmetric_noise
 
     x, y, x_held, y_held = (t.float() if t.is_floating_point() else t for t in _data())
-    ridge, generations = RIDGE, 4
+    y = torch.from_numpy(symmetric_noise(y.numpy(), noise, CLASSES, seed=1)[0])
     train = DataLoader(TensorDataset(x, y), batch_size=32, shuffle=True)
     held = DataLoader(TensorDataset(x_held, y_held), batch_size=64)
 
@@ -283,20 +282,24 @@ def test_lineage_records_the_spectrum_and_its_forecast(tmp_path):
             _Fourier(64, FEATURES, gamma=0.05, seed=7), nn.Linear(FEATURES, CLASSES)
         )
 
-    lineage = filial.Lineage(
+    return filial.Lineage(
         make_model,
         train,
         held,
-        run_dir=tmp_path / "run",
+        run_dir=run_dir,
         targets="l2",
         store_dtype="float32",
         metric=_onehot_neg_mse,
         max_generations=generations,
         patience=generations + 1,
-        spectrum_samples=2000,
         progress=False,
-        tensorboard=True,
+        **{"tensorboard": False, "spectrum_samples": 2000, **settings},
     )
+
+
+def _ridge_loop(lineage: Any, ridge: float, stop_after: int | None = None) -> None:
+    """Hook mode: each generation's last layer solved to the ridge solution with an
+    unpenalised bias, from the batches of the shuffled gen.loader (cached targets)."""
     for gen in lineage:
         phi, wanted = [], []
         for inputs, labels, targets in gen.loader:
@@ -315,6 +318,21 @@ def test_lineage_records_the_spectrum_and_its_forecast(tmp_path):
             gen.model[1].weight.copy_(torch.from_numpy(weight.T.copy()))
             gen.model[1].bias.copy_(torch.from_numpy(mean_y - mean_phi @ weight))
         gen.finish(gen.model)
+        if stop_after is not None and gen.index == stop_after:
+            break
+
+
+@pytest.mark.slow
+def test_lineage_records_the_spectrum_and_its_forecast(tmp_path):
+    """A real l2 lineage in the exact regime (float32 model and store, shuffled gen.loader):
+    the recorded eigencomponents shrink by d_i / (d_i + c) per generation (Mobahi et al. 2020),
+    the forecast in generation 0's record predicts every later record's held-out metric to 1e-4,
+    and its collapse round is the one the records show."""
+    import filial
+
+    ridge, generations = RIDGE, 4
+    lineage = _exact_lineage(tmp_path / "run", generations, tensorboard=True)
+    _ridge_loop(lineage, ridge)
     records = lineage.result.records
     assert len(records) == generations + 1
     kernel = spectral.load_kernel(tmp_path / "run" / spectral.FOLDER)
@@ -397,3 +415,37 @@ def test_settings_of_the_view_are_checked():
     assert generation_settings(recipe.load(path))["spectrum_samples"] == 0  # off by default
     with pytest.raises(recipe.RecipeError, match="true or false"):
         recipe.load(path, ["generations.spectrum_stop=1"])
+
+
+@pytest.mark.slow
+def test_resumed_view_reuses_the_kernel_and_the_forecast_may_stop(tmp_path):
+    """Interrupted after generation 0 and resumed: generation 1's spectrum is its stored
+    targets projected on the saved kernel; with spectrum_stop the lineage stops once the
+    forecast's best generation is trained (reason 'forecast'); a changed view is refused."""
+    from filial.errors import InputError
+
+    run = tmp_path / "run"
+    first = _exact_lineage(run, 4, noise=0.4, spectrum_stop=True)
+    _ridge_loop(first, 0.08, stop_after=0)
+    first.close()
+    predicted = first.result.records[0]["forecast"]["fixed"]["best"]
+    # 40 % wrong labels and a small ridge: the forecast asks for two generations
+    assert predicted == 2
+    with pytest.raises(InputError, match="spectrum_samples"):
+        _exact_lineage(run, 4, noise=0.4, spectrum_stop=True, spectrum_samples=100)
+    resumed = _exact_lineage(run, 4, noise=0.4, spectrum_stop=True)
+    _ridge_loop(resumed, 0.08)
+    result = resumed.result
+    assert result.stop_reason == "forecast"
+    assert [r["generation"] for r in result.records] == list(range(predicted + 1))
+    assert result.records[-1]["stop"]["forecast_best"] == predicted
+    kernel = spectral.load_kernel(run / spectral.FOLDER)
+    stored = filial_store(run / "gen1")
+    expected = spectral.spectrum_figures(kernel.coefficients(stored[kernel.indices]))
+    assert result.records[1]["spectrum"] == pytest.approx(expected)
+
+
+def filial_store(folder: Path) -> np.ndarray:
+    import filial
+
+    return filial.TargetStore(folder).read_all()[:, 0, :].astype(np.float64)
