@@ -123,7 +123,9 @@ def test_hook_reads_the_last_linear_input(exact):
     # The basis is numpy.linalg.eigh's of the centred Gram matrix, in descending order.
     gram = kernel.features @ kernel.features.T
     eigenvalues = np.linalg.eigh(gram)[0][::-1]
-    np.testing.assert_allclose(kernel.eigenvalues, np.clip(eigenvalues, 0, None), atol=1e-9)
+    # Centring leaves rank m - 1 (the constant vector is in the null space): 199 kept.
+    assert len(kernel.eigenvalues) == 199 == np.linalg.matrix_rank(kernel.features)
+    np.testing.assert_allclose(kernel.eigenvalues, eigenvalues[:199], atol=1e-9)
     np.testing.assert_allclose(
         gram @ kernel.basis, kernel.basis * kernel.eigenvalues, rtol=0, atol=1e-8
     )
@@ -245,6 +247,31 @@ def test_subset_rows_collects_only_the_subset_in_order():
     # sample 1 view 0 = code 2, sample 4 view 0 = code 8, sample 7 view 0 = code 14
     np.testing.assert_array_equal(got, [[4.0, 5.0], [16.0, 17.0], [108.0, 109.0]])
     np.testing.assert_array_equal(labels, [2, 8, 14])
+
+
+def test_narrow_features_use_the_thin_svd_and_count_the_outside():
+    """p < m: G's eigenpairs from the SVD of the centred features equal numpy.linalg.eigh's
+    non-zero ones; outputs outside the span are one 'outside' share, not spread over an
+    arbitrary rotation of the null space."""
+    rng = np.random.default_rng(4)
+    features = rng.standard_normal((120, 7))
+    kernel = spectral.build_kernel(np.arange(120), features, np.zeros(120, int), features, [0])
+    centred = features - features.mean(axis=0)
+    reference = np.linalg.eigh(centred @ centred.T)[0][::-1][:7]
+    np.testing.assert_allclose(kernel.eigenvalues, reference, rtol=1e-10)
+    assert kernel.basis.shape == (120, 7)
+    inside = centred @ rng.standard_normal((7, 3))
+    noise = rng.standard_normal((120, 3))
+    noise -= noise.mean(axis=0)
+    noise -= kernel.basis @ (kernel.basis.T @ noise)  # orthogonal to the span
+    coefficients = kernel.coefficients(inside + noise)
+    outside = kernel.outside(inside + noise, coefficients)
+    assert outside == pytest.approx(float(np.square(noise).sum()), rel=1e-9)
+    figures = spectral.spectrum_figures(coefficients, outside)
+    share = outside / (outside + float(np.square(inside).sum()))
+    assert figures["outside"] == pytest.approx(share)
+    assert figures["rest"] >= figures["outside"]
+    assert figures["components95"] <= 7
 
 
 def test_figures_of_known_energies():

@@ -193,6 +193,7 @@ _SCHEMA: dict[str, dict[str, Field]] = {
 }
 _FACTORY_SECTIONS = ("data", "model")
 BASELINE_KEYS = ("baseline", "baseline_every", "label_smoothing")
+ADDED_LATER = (("generations", "spectrum_samples"), ("generations", "spectrum_stop"))
 _NAME = re.compile(r"[A-Za-z0-9][A-Za-z0-9._-]*")
 SECTIONS = ("run", "data", "model", "training", "generations")
 
@@ -514,6 +515,9 @@ class Recipe:
         # again, the others are kept, and the lineages are not touched.
         for key in BASELINE_KEYS:
             values["run"].pop(key, None)
+        # Keys added later: a recipe saved before them ran with their defaults.
+        for section, key in ADDED_LATER:
+            values.setdefault(section, {}).setdefault(key, _SCHEMA[section][key].default)
         return values
 
     def baselines(self) -> dict[str, Any]:

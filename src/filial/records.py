@@ -49,7 +49,8 @@ class SpectrumFigures(TypedDict):
     top1: float  # share of that energy in the top 1 % of eigen-indices
     top10: float
     top50: float
-    rest: float  # beyond the top half
+    rest: float  # beyond the top half (the outside included)
+    outside: float  # share outside the kernel's span (outputs no function of its features makes)
     components95: int  # the fewest components holding 95 % of the energy
     participation: float  # (sum e)^2 / sum e^2
 

@@ -161,9 +161,18 @@ class Kernel:
         return len(self.indices)
 
     def coefficients(self, outputs: np.ndarray) -> np.ndarray:
-        """The eigencomponents ``V^T (Y - mean(Y))`` of outputs on the subset (``m x C``)."""
+        """The eigencomponents ``V^T (Y - mean(Y))`` of outputs on the subset (``r x C``, one
+        row per eigenvector of a non-zero eigenvalue)."""
         outputs = np.asarray(outputs, dtype=np.float64).reshape(self.size, -1)
         return self.basis.T @ (outputs - outputs.mean(axis=0))
+
+    def outside(self, outputs: np.ndarray, coefficients: np.ndarray | None = None) -> float:
+        """The energy of the centred outputs outside the kernel's span (the null space of
+        ``G``, where eigh's basis would be an arbitrary rotation)."""
+        outputs = np.asarray(outputs, dtype=np.float64).reshape(self.size, -1)
+        found = self.coefficients(outputs) if coefficients is None else coefficients
+        total = float(np.square(outputs - outputs.mean(axis=0)).sum())
+        return max(0.0, total - float(np.square(found).sum()))
 
 
 def build_kernel(
@@ -173,47 +182,64 @@ def build_kernel(
     heldout_features: np.ndarray,
     heldout_labels: np.ndarray,
 ) -> Kernel:
-    """Centre ``features`` (rows: the subset's samples), form ``G = F F^T`` and decompose it with
-    ``numpy.linalg.eigh`` (eigenvalues sorted descending, negatives from rounding set to 0)."""
+    """Centre ``features`` (rows: the subset's samples) and decompose ``G = F F^T``: with
+    ``numpy.linalg.eigh`` of the ``m x m`` Gram matrix when the features are at least as wide
+    as the subset, else from the thin SVD of ``F`` (``G``'s eigenvectors are ``F``'s left
+    singular vectors, its eigenvalues the squared singular values; O(m p^2) instead of O(m^3)).
+    Only the eigenvectors of non-zero eigenvalues are kept: singular values above
+    ``s_max * max(m, p) * eps``, numpy.linalg.matrix_rank's default tolerance. Descending."""
     features = np.asarray(features, dtype=np.float64)
     mean = features.mean(axis=0)
     centred = features - mean
-    eigenvalues, basis = np.linalg.eigh(centred @ centred.T)
-    order = np.argsort(eigenvalues)[::-1]
+    m, p = centred.shape
+    if p >= m:
+        eigenvalues, basis = np.linalg.eigh(centred @ centred.T)
+        order = np.argsort(eigenvalues)[::-1]
+        eigenvalues, basis = np.clip(eigenvalues[order], 0.0, None), basis[:, order]
+    else:
+        basis, singular, _ = np.linalg.svd(centred, full_matrices=False)
+        eigenvalues = np.square(singular)
+    singular = np.sqrt(eigenvalues)
+    tolerance = (singular.max() if len(singular) else 0.0) * max(m, p) * np.finfo(np.float64).eps
+    kept = singular > tolerance
     return Kernel(
         indices=np.asarray(indices, dtype=np.int64),
         mean=mean,
         features=centred,
-        eigenvalues=np.clip(eigenvalues[order], 0.0, None),
-        basis=np.ascontiguousarray(basis[:, order]),
+        eigenvalues=np.ascontiguousarray(eigenvalues[kept]),
+        basis=np.ascontiguousarray(basis[:, kept]),
         labels=np.asarray(labels),
         heldout_features=np.asarray(heldout_features, dtype=np.float64),
         heldout_labels=np.asarray(heldout_labels),
     )
 
 
-def spectrum_figures(coefficients: np.ndarray) -> dict[str, float | int]:
-    """The record's figures of one generation's eigencomponents (``m x C``): ``energy`` (the
-    squared norm of the centred outputs), the cumulative shares ``top1``, ``top10``, ``top50``
-    of the leading eigen-indices and ``rest`` (beyond the top half), ``components95`` (the
-    smallest number of components holding 95 % of the energy) and ``participation``
-    (``(sum e)^2 / sum e^2``, the participation ratio of the energies ``e``)."""
+def spectrum_figures(coefficients: np.ndarray, outside: float = 0.0) -> dict[str, float | int]:
+    """The record's figures of one generation's eigencomponents (``r x C``) and its energy
+    ``outside`` the kernel's span: ``energy`` (the squared norm of the centred outputs), the
+    cumulative shares of it in the leading ``top1``, ``top10``, ``top50`` % of the ``r``
+    eigen-indices, ``rest`` (everything else, the outside included), ``outside`` (its share),
+    ``components95`` (the fewest eigencomponents holding 95 % of the energy inside the span)
+    and ``participation`` (``(sum e)^2 / sum e^2`` of the energies ``e`` inside the span)."""
     energy = np.square(np.asarray(coefficients, dtype=np.float64)).reshape(len(coefficients), -1)
     per_index = energy.sum(axis=1)
-    total = float(per_index.sum())
-    m = len(per_index)
+    inside = float(per_index.sum())
+    total = inside + float(outside)
+    r = len(per_index)
     figures: dict[str, float | int] = {"energy": total}
-    if total <= 0.0:
+    if total <= 0.0 or inside <= 0.0 or r == 0:
         figures.update({name: 0.0 for name, _ in BANDS})
-        figures.update({"rest": 0.0, "components95": 0, "participation": 0.0})
+        share = 1.0 if total > 0 else 0.0
+        figures.update({"rest": share, "outside": share, "components95": 0, "participation": 0.0})
         return figures
     cumulative = np.cumsum(per_index) / total
     for name, share in BANDS:
-        figures[name] = float(cumulative[max(1, math.ceil(share * m)) - 1])
+        figures[name] = float(cumulative[max(1, math.ceil(share * r)) - 1])
     figures["rest"] = 1.0 - float(figures["top50"])
-    ranked = np.cumsum(np.sort(per_index)[::-1]) / total
+    figures["outside"] = float(outside) / total
+    ranked = np.cumsum(np.sort(per_index)[::-1]) / inside
     figures["components95"] = int(np.searchsorted(ranked, HELD - 1e-12) + 1)
-    figures["participation"] = float(total**2 / np.square(per_index).sum())
+    figures["participation"] = float(inside**2 / np.square(per_index).sum())
     return figures
 
 
@@ -238,13 +264,17 @@ class _Surrogate:
     first: np.ndarray  # eigencomponents of the centred targets (m, C)
     across: np.ndarray  # held-out centred features x subset features x basis (n_h, m)
 
+    outside: float  # the centred targets' energy outside the kernel's span (never fitted)
+
     @classmethod
     def of(cls, kernel: Kernel, width: int) -> _Surrogate:
         targets = _targets(kernel.labels, width)
         intercept = targets.mean(axis=0)
         held = kernel.heldout_features - kernel.mean
         across = (held @ kernel.features.T) @ kernel.basis
-        return cls(kernel, targets, intercept, kernel.coefficients(targets), across)
+        first = kernel.coefficients(targets)
+        outside = kernel.outside(targets, first)
+        return cls(kernel, targets, intercept, first, across, outside)
 
     def train(self, components: np.ndarray) -> np.ndarray:
         return self.intercept + self.kernel.basis @ components
@@ -345,7 +375,7 @@ def forecast(
     c = fit_ridge(surrogate, metric, train_fit) if ridge is None else float(ridge)
     held_labels = _labels_tensor(kernel.heldout_labels)
     components = surrogate.shrink(c) * surrogate.first
-    residual = float(np.square(components - surrogate.first).sum())
+    residual = float(np.square(components - surrogate.first).sum()) + surrogate.outside
     first_energy = float(np.square(components).sum())
     fixed_values = [metric(_as_tensor(surrogate.heldout(surrogate.first, c)), held_labels)]
     fixed_energy = [first_energy]
@@ -669,9 +699,10 @@ class SpectralView:
 
     def figures(self, index: int, rows: np.ndarray) -> dict[str, Any]:
         """The record's ``spectrum`` of a generation whose subset outputs are ``rows``."""
-        coefficients = self.kernel().coefficients(rows)
+        kernel = self.kernel()
+        coefficients = kernel.coefficients(rows)
         save_coefficients(self.folder, index, coefficients)
-        return spectrum_figures(coefficients)
+        return spectrum_figures(coefficients, kernel.outside(rows, coefficients))
 
 
 def view_settings(options: SpectralOptions) -> dict[str, Any]:

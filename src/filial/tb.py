@@ -71,6 +71,7 @@ _SPECTRUM_NAMES = {
     "top10": "energy share, top 10 %",
     "top50": "energy share, top 50 %",
     "rest": "energy share, rest",
+    "outside": "energy share, outside the kernel's span",
     "components95": "components holding 95 %",
     "participation": "participation ratio",
 }
