@@ -67,6 +67,7 @@ def lineage_once(noise: float, targets: str, seed: int, args: argparse.Namespace
         "heldout": [r["heldout"] for r in result.records],
         "forecast_heldout": [row["fixed"] for row in compared["rows"]],
         "components95": [r["spectrum"]["components95"] for r in result.records],
+        "outside": [r["spectrum"]["outside"] for r in result.records],
         "kernel_seconds": first["spectrum_seconds"],
         "generation0_seconds": first["seconds"],
         "projection_share": [r["spectrum_seconds"] / r["seconds"] for r in later],
