@@ -198,6 +198,12 @@ _NAME = re.compile(r"[A-Za-z0-9][A-Za-z0-9._-]*")
 SECTIONS = ("run", "data", "model", "training", "generations")
 
 
+_PLAIN_KINDS: dict[str, tuple[type, str]] = {
+    "str": (str, "a string"),
+    "bool": (bool, "true or false"),
+}
+
+
 def _describe(value: Any) -> str:
     return f"{value!r} ({type(value).__name__})"
 
@@ -212,10 +218,9 @@ def _check_kind(name: str, field: Field, value: Any) -> Any:
         if not math.isfinite(value):
             raise RecipeError(f"{name} should be a finite number, but got {value!r}")
         return float(value)
-    if field.kind == "bool" and not isinstance(value, bool):
-        raise RecipeError(f"{name} should be true or false, but got {_describe(value)}")
-    if field.kind == "str" and not isinstance(value, str):
-        raise RecipeError(f"{name} should be a string, but got {_describe(value)}")
+    plain = _PLAIN_KINDS.get(field.kind)
+    if plain is not None and not isinstance(value, plain[0]):
+        raise RecipeError(f"{name} should be {plain[1]}, but got {_describe(value)}")
     if field.kind == "choice" and value not in field.choices:
         options = ", ".join(repr(c) for c in field.choices)
         raise RecipeError(f"{name} should be one of {options}, but got {_describe(value)}")
