@@ -39,7 +39,7 @@ from sklearn.metrics import accuracy_score
 from torch.utils.data import DataLoader, DistributedSampler
 
 import filial
-from filial import distributed
+from filial import distributed, spectral
 from filial.checkpoint import load_checkpoint
 from filial.data import EpochLoader, Replay, sharded_loader, training_loader
 from filial.demo import MLP, mail_room
@@ -310,7 +310,8 @@ def _same(a, b) -> bool:
 
 
 def _without_seconds(records):
-    return [{k: v for k, v in r.items() if k != "seconds"} for r in records]
+    timings = ("seconds", "spectrum_seconds")
+    return [{k: v for k, v in r.items() if k not in timings} for r in records]
 
 
 @pytest.mark.slow
@@ -326,6 +327,19 @@ def test_both_ranks_report_the_same_records_and_stop_together(two_ranks):
     assert len(straight["records"]) >= 2
     # only rank 0 writes TensorBoard runs: one event file per run
     assert len(list((root / "straight" / "tb" / "gen0").iterdir())) == 1
+    # The spectral view: rank 0's kernel, and each generation's subset rows gathered from both
+    # shards are the stored targets of those samples (one process's projection of them).
+    assert "forecast" in straight["records"][0]
+    folder = root / "straight" / spectral.FOLDER
+    kernel = spectral.load_kernel(folder)
+    assert len(kernel.indices) == 300
+    for record in straight["records"]:
+        g = record["generation"]
+        stored = filial.TargetStore(root / "straight" / f"gen{g}").read_all()[:, 0, :]
+        expected = kernel.coefficients(stored[kernel.indices].astype(np.float64))
+        np.testing.assert_allclose(spectral.load_coefficients(folder, g), expected, atol=1e-9)
+        figures = spectral.spectrum_figures(expected)
+        assert record["spectrum"]["components95"] == figures["components95"]
 
 
 def _as_one_process_writes_it(

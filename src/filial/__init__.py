@@ -9,6 +9,7 @@ from .fit import fit_epochs
 from .generation import Generation
 from .lineage import Lineage, Result
 from .pool import Admission
+from .spectral import forecast_run
 from .stopping import Decision, StopRule
 from .store import TargetStore
 
@@ -21,5 +22,6 @@ __all__ = [
     "StopRule",
     "TargetStore",
     "fit_epochs",
+    "forecast_run",
 ]
 __version__ = "0.1.0"

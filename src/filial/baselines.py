@@ -323,7 +323,11 @@ def train_baseline(
         loss = StudentLoss("ce", label_smoothing=spec.label_smoothing)
     seed_generation(inputs.seed, 0, inputs.train_loader)
     baseline_inputs = dataclasses.replace(
-        inputs, run=inputs.run.baseline(spec.name), write_targets=False, loss=loss
+        inputs,
+        run=inputs.run.baseline(spec.name),
+        write_targets=False,
+        loss=loss,
+        spectral=None,
     )
     conclude = _concluder(spec, inputs.run, epochs, keeper)
     gen = Generation(0, model_fn(), baseline_inputs, conclude)

@@ -59,6 +59,7 @@ from .rundir import (
     RECIPE_FILE,
     Claim,
     RecipeRunDirectory,
+    RunDirectory,
     claim,
     foreign_entries,
     refuse_unusable,
@@ -203,6 +204,8 @@ def generation_settings(recipe: recipes.Recipe, seed: int = 0) -> dict[str, Any]
         "store_dtype": g["store_dtype"],
         "top_k": g["top_k"] or None,
         "teacher_mode": g["teacher"],
+        "spectrum_samples": g["spectrum_samples"],
+        "spectrum_stop": g["spectrum_stop"],
         "seed": seed,
     }
 
@@ -580,6 +583,32 @@ def _plot(summary: dict[str, Any], path: str) -> int:
     return EXIT_OK
 
 
+def _forecast(args: argparse.Namespace) -> int:
+    """``filial forecast RUN``: the spectral forecast of each lineage, beside what it did."""
+    from .report import forecast_lines
+    from .spectral import forecast_run
+
+    root = Path(args.run_dir)
+    recipe_run = RecipeRunDirectory(root)
+    folders = [root] if RunDirectory(root).state_path.is_file() else recipe_run.seed_folders()
+    if not folders:
+        print(f"filial: {root} holds no lineage (no lineage.json, no seedS/)", file=sys.stderr)
+        return EXIT_USAGE
+    found: dict[str, Any] = {}
+    try:
+        for folder in folders:
+            found[str(folder)] = forecast_run(folder, generations=args.generations)
+    except (ValueError, OSError, KeyError) as exc:
+        print(f"filial: {exc}", file=sys.stderr)
+        return EXIT_USAGE
+    if args.json:
+        print(json.dumps(found, indent=2))
+        return EXIT_OK
+    for name, compared in found.items():
+        print("\n".join([name, *forecast_lines(compared), ""]))
+    return EXIT_OK
+
+
 def parser() -> argparse.ArgumentParser:
     top = argparse.ArgumentParser(
         prog="filial",
@@ -617,6 +646,15 @@ def parser() -> argparse.ArgumentParser:
         help="also draw the metric by generation against generation 0 and each baseline into "
         "FILE.png (needs matplotlib: pip install 'filial[plot]')",
     )
+    forecast = sub.add_parser(
+        "forecast",
+        help="the spectral forecast of a run whose generation 0 finished (spectrum_samples > 0)",
+    )
+    forecast.add_argument("run_dir", help="a run directory, e.g. runs/digits_ce")
+    forecast.add_argument(
+        "--generations", type=int, help="forecast this many generations (default: the run's max)"
+    )
+    forecast.add_argument("--json", action="store_true", help="print the forecast as JSON")
     return top
 
 
@@ -625,4 +663,6 @@ def main(argv: Sequence[str] | None = None) -> int:
     args = parser().parse_args(argv)
     if args.command == "run":
         return _run(args, argv)
+    if args.command == "forecast":
+        return _forecast(args)
     return _report(args)

@@ -21,7 +21,7 @@ from .generation import Generation, Measured
 from .observers import Observer
 from .records import DecisionState, GenerationRecord
 from .rundir import LineageState, RunDirectory
-from .stopping import StopRule
+from .stopping import Decision, StopRule
 from .store import TargetStore
 from .teacher import TeacherStores
 
@@ -35,6 +35,7 @@ class Concluder:
     state: LineageState
     run: RunDirectory
     rule: StopRule
+    forecast_stop: bool  # spectrum_stop: stop once the spectral forecast's best is trained
     heldout: HeldoutHistory
     teachers: TeacherStores
     observers: Observer
@@ -87,7 +88,7 @@ class Concluder:
             self.teachers.fresh = TargetStore(gen.directory)
         if self.state.resumed:
             warn_about_other_passes(records, record)
-        decision = self.rule.decide([*records, record])
+        decision = self._forecast_stop(self.rule.decide([*records, record]), [*records, record])
         if decision.stop:
             record["stop"] = {"reason": decision.reason, "best": decision.best, **decision.detail}  # type: ignore[typeddict-item]
         state: DecisionState = {
@@ -99,6 +100,18 @@ class Concluder:
         self.state.commit(record, state)
         self.observers.generation_ended(record, self.state.records, state)
         return record
+
+    def _forecast_stop(self, decision: Decision, records: list[GenerationRecord]) -> Decision:
+        """With ``spectrum_stop``: stop once the spectral forecast's best generation (c held
+        fixed) is trained, unless the rule stopped already. The kept generation is still the
+        held-out best."""
+        if decision.stop or not self.forecast_stop:
+            return decision
+        predicted = records[0].get("forecast", {}).get("fixed", {}).get("best")
+        generation = records[-1]["generation"]
+        if predicted is None or generation < predicted:
+            return decision
+        return Decision(True, "forecast", decision.best, {"forecast_best": int(predicted)})
 
 
 def warn_about_other_passes(records: list[GenerationRecord], newest: GenerationRecord) -> None:

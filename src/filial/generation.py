@@ -38,6 +38,7 @@ from .pool import PoolData, PoolLoss, PoolPass, PoolTeacher, conclude, mixed_loa
 from .records import EpochEntry, GenerationRecord, mode_of
 from .rundir import RunDirectory
 from .seeding import Stream, stream_seed
+from .spectral import SpectralView
 from .store import TargetStore
 from .teacher import FigureSpec, OnlineTeacherLoader, StoreSpec, TeacherPass, training_pass
 
@@ -59,6 +60,8 @@ class GenerationInputs:
     # Refuses a finished model that is not what model_fn builds (models.ModelChecks.finished).
     check_finished: Callable[[nn.Module, int], None] | None = None
     pool: PoolData | None = None  # an unlabelled pool (filial.pool), labelled by every teacher
+    # The spectral view (filial.spectral): its consumer joins the teacher pass; None: no view.
+    spectral: SpectralView | None = None
 
 
 @dataclass
@@ -245,6 +248,7 @@ class Generation:
             seed,
             store=(inputs.store, self.directory) if inputs.write_targets else None,
             figures=FigureSpec(loss.kind, loss.temperature, inputs.metric),
+            extra=[] if inputs.spectral is None else [inputs.spectral.consumer()],
             fault=fault,
         )
         pooled: PoolPass | None = None
@@ -307,6 +311,10 @@ class Generation:
                 self.pool_teacher,
                 record["checkpoint_sha256"],
             )
+        if inputs.spectral is not None and not diverged:
+            started = time.perf_counter()
+            record.update(inputs.spectral.measure(self.index, model, passed.extra[0], record))
+            record["spectrum_seconds"] = time.perf_counter() - started
         record["epochs"] = sorted(self.history, key=lambda entry: entry["epoch"])
         record["passes"] = self._passes.count  # over gen.loader, by the user's loop or fit
         record["batches"] = self._passes.batches

@@ -15,6 +15,7 @@ generation without one. The other rooms: :mod:`filial.settings` (which settings 
 
 from __future__ import annotations
 
+import dataclasses
 import logging
 from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass
@@ -25,7 +26,7 @@ import torch
 from torch import nn
 from torch.utils.data import DataLoader
 
-from . import distributed
+from . import distributed, spectral
 from .arguments import (
     check_ranks,
     check_stores_fit,
@@ -56,7 +57,8 @@ from .probe import replay_for
 from .records import BaselineRecord, GenerationRecord
 from .rundir import LineageState, RunDirectory
 from .seeding import seed_generation
-from .settings import DataFacts, saved_settings
+from .settings import DataFacts, Settings, saved_settings
+from .spectral import FeatureFn, SpectralOptions, SpectralView
 from .stopping import StopRule
 from .teacher import StoreSpec, TeacherStores
 
@@ -139,6 +141,13 @@ class Lineage:
     which pool rows carry the label ``-1`` (:data:`filial.pool.NO_LABEL`; a training label of
     -1 is refused) and ``gen.loss`` handles both kinds of row. An epoch covers each labelled
     and each admitted pool sample once. See :mod:`filial.pool`.
+
+    ``spectrum_samples`` (default 0: off) turns on the spectral view (:mod:`filial.spectral`)
+    on a fixed subset of that many training samples: every record gets a ``spectrum`` (which
+    eigencomponents of generation 0's feature kernel the outputs hold), and generation 0's a
+    ``forecast`` of the generations to come. ``spectrum_features(model, inputs)`` replaces the
+    default features (the input of the model's last ``nn.Linear``). ``spectrum_stop=True`` lets
+    the lineage stop once the forecast's best generation is trained (never by default).
     """
 
     def __init__(
@@ -167,6 +176,9 @@ class Lineage:
         observers: Sequence[Observer] = (),
         unlabeled_loader: DataLoader | None = None,
         admission: Admission | None = None,
+        spectrum_samples: int = 0,
+        spectrum_stop: bool = False,
+        spectrum_features: FeatureFn | None = None,
     ) -> None:
         # Long only for its arguments: each is checked elsewhere, and the rooms are built here.
         settings, train, heldout = checked_arguments(
@@ -184,6 +196,8 @@ class Lineage:
                 "store_dtype": store_dtype,
                 "top_k": top_k,
                 "teacher_mode": teacher_mode,
+                "spectrum_samples": spectrum_samples,
+                "spectrum_stop": spectrum_stop,
                 "seed": seed,
             },
         )
@@ -226,6 +240,9 @@ class Lineage:
             check_finished=self._checks.finished,
             pool=self._pool,
         )
+        self._inputs = dataclasses.replace(
+            self._inputs, spectral=spectral_view(self._inputs, settings, spectrum_features)
+        )
         self._teachers = TeacherStores(
             self._run, model_fn, train_loader, replay, spec, settings.seed
         )
@@ -238,7 +255,7 @@ class Lineage:
         if distributed.is_distributed():
             check_ranks(self.settings, train_loader)
         self._concluder = Concluder(
-            self._state, self._run, rule, self._heldout, self._teachers,
+            self._state, self._run, rule, settings.spectrum_stop, self._heldout, self._teachers,
             self._observers,
         )
         self._state.open(fresh)
@@ -417,3 +434,21 @@ class Lineage:
             observer=self._observers,
             pool_teacher=pool_teacher,
         )
+
+
+def spectral_view(
+    inputs: GenerationInputs, settings: Settings, feature_fn: FeatureFn | None
+) -> SpectralView | None:
+    """The spectral view when ``spectrum_samples`` asks for one (see :mod:`filial.spectral`)."""
+    if not settings.spectrum_samples:
+        return None
+    return SpectralView(
+        inputs.run.root / spectral.FOLDER,
+        SpectralOptions(settings.spectrum_samples, settings.spectrum_stop, feature_fn),
+        len(inputs.train_loader.dataset),  # type: ignore[arg-type]
+        settings.views if inputs.replay is not None else 1,
+        settings.seed,
+        (inputs.train_loader, inputs.heldout_loader),
+        inputs.metric,
+        settings.max_generations,
+    )

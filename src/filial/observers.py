@@ -23,6 +23,8 @@ from tqdm.auto import tqdm
 
 from . import distributed
 from .records import BaselineRecord, DecisionState, EpochEntry, GenerationRecord
+from .spectral import FOLDER as SPECTRAL_FOLDER
+from .spectral import load_coefficients
 from .stopping import StopRule
 from .tb import TensorBoardLog, baseline_name
 
@@ -105,6 +107,21 @@ def figure(value: Any) -> str:
     return f"{value:.4f}"
 
 
+def forecast_line(found: dict[str, Any]) -> str:
+    """The spectral forecast in one line (see :func:`filial.spectral.forecast`)."""
+    fixed, refit = found["fixed"], found["refit"]
+
+    def collapse(regime: dict[str, Any]) -> str:
+        return "none in range" if regime["collapse"] is None else f"at {regime['collapse']}"
+
+    return (
+        f"spectral forecast (kernel ridge, c = {found['ridge']:.3g}): best generation "
+        f"{fixed['best']} (held-out {figure(fixed['heldout'][fixed['best']])}), collapse "
+        f"{collapse(fixed)}; with c refitted each round: best {refit['best']}, collapse "
+        f"{collapse(refit)}"
+    )
+
+
 class ConsoleProgress(Observer):
     """One line per finished generation on stderr, through tqdm so open bars survive."""
 
@@ -131,11 +148,20 @@ class ConsoleProgress(Observer):
             if decision["stop"]
             else ""
         )
+        spectrum = record.get("spectrum")
+        shape = (
+            f", 95 % of output energy in {spectrum['components95']} components (top 10 %: "
+            f"{spectrum['top10']:.0%})"
+            if spectrum is not None
+            else ""
+        )
         self.say(
             f"generation {record['generation']}: held-out {figure(record['heldout'])}, train vs "
-            f"labels {figure(record['train'])}, ensemble {figure(record['ensemble'])}, "
-            f"{record['seconds']:.1f} s{stop}"
+            f"labels {figure(record['train'])}, ensemble {figure(record['ensemble'])}"
+            f"{shape}, {record['seconds']:.1f} s{stop}"
         )
+        if "forecast" in record:
+            self.say(forecast_line(record["forecast"]))
 
     def baseline_ended(self, record: BaselineRecord, records: Sequence[GenerationRecord]) -> None:
         name = baseline_name(record)
@@ -161,14 +187,20 @@ class TensorBoardRuns(Observer):
     def __init__(self, folder: str | os.PathLike[str], *, alone: bool = True) -> None:
         self.log = TensorBoardLog(folder, alone=alone)
         self.settings: dict[str, Any] = {}
+        self.run_dir: Path | None = None
 
     def attached(self, run_dir: Path, settings: dict[str, Any]) -> None:
         self.settings = {key: settings[key] for key in _HPARAMS}
+        self.run_dir = run_dir
 
     def generation_ended(
         self, record: GenerationRecord, records: Sequence[GenerationRecord], decision: DecisionState
     ) -> None:
         self.log.generation(record, records[0], records=records)
+        if "spectrum" in record and self.run_dir is not None:
+            found = load_coefficients(self.run_dir / SPECTRAL_FOLDER, record["generation"])
+            energies = None if found is None else (found**2).sum(axis=1)
+            self.log.spectrum(record, energies)
         if decision["stop"]:
             self.log.session(self.settings, session_metrics(records))
             self.log.close()

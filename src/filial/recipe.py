@@ -183,6 +183,15 @@ _SCHEMA: dict[str, dict[str, Field]] = {
         "store_dtype": Field("choice", "float16", STORE_DTYPES),
         "top_k": Field("int", 0, minimum=0, help="0: every output; k: the k largest (ce only)"),
         "teacher": Field("choice", "cached", ("cached", "online")),
+        "spectrum_samples": Field(
+            "int",
+            0,
+            minimum=0,
+            help="0: no spectral view; m: its kernel on m training samples (e.g. 2000)",
+        ),
+        "spectrum_stop": Field(
+            "bool", False, help="stop once the spectral forecast's best generation is trained"
+        ),
     },
     # The unlabelled pool (filial.pool.Admission), used when the data factory returns one.
     "pool": {
@@ -203,8 +212,15 @@ _SCHEMA: dict[str, dict[str, Field]] = {
 }
 _FACTORY_SECTIONS = ("data", "model")
 BASELINE_KEYS = ("baseline", "baseline_every", "label_smoothing")
+ADDED_LATER = (("generations", "spectrum_samples"), ("generations", "spectrum_stop"))
 _NAME = re.compile(r"[A-Za-z0-9][A-Za-z0-9._-]*")
 SECTIONS = ("run", "data", "model", "training", "generations", "pool")
+
+
+_PLAIN_KINDS: dict[str, tuple[type, str]] = {
+    "str": (str, "a string"),
+    "bool": (bool, "true or false"),
+}
 
 
 def _describe(value: Any) -> str:
@@ -221,8 +237,9 @@ def _check_kind(name: str, field: Field, value: Any) -> Any:
         if not math.isfinite(value):
             raise RecipeError(f"{name} should be a finite number, but got {value!r}")
         return float(value)
-    if field.kind == "str" and not isinstance(value, str):
-        raise RecipeError(f"{name} should be a string, but got {_describe(value)}")
+    plain = _PLAIN_KINDS.get(field.kind)
+    if plain is not None and not isinstance(value, plain[0]):
+        raise RecipeError(f"{name} should be {plain[1]}, but got {_describe(value)}")
     if field.kind == "choice" and value not in field.choices:
         options = ", ".join(repr(c) for c in field.choices)
         raise RecipeError(f"{name} should be one of {options}, but got {_describe(value)}")
@@ -526,6 +543,9 @@ class Recipe:
         defaults = {key: field.default for key, field in _SCHEMA["pool"].items()}
         if values.get("pool", defaults) == defaults:
             values.pop("pool", None)
+        # Keys added later: a recipe saved before them ran with their defaults.
+        for section, key in ADDED_LATER:
+            values.setdefault(section, {}).setdefault(key, _SCHEMA[section][key].default)
         return values
 
     def baselines(self) -> dict[str, Any]:

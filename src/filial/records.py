@@ -39,6 +39,20 @@ class StopDetail(TypedDict, total=False):
     patience: int
     min_gain: float
     max_generations: int  # max-generations
+    forecast_best: int  # forecast: the spectral forecast's best generation
+
+
+class SpectrumFigures(TypedDict):
+    """The spectral view of one generation (:func:`filial.spectral.spectrum_figures`)."""
+
+    energy: float  # squared norm of the centred training outputs on the subset
+    top1: float  # share of that energy in the top 1 % of eigen-indices
+    top10: float
+    top50: float
+    rest: float  # beyond the top half (the outside included)
+    outside: float  # share outside the kernel's span (outputs no function of its features makes)
+    components95: int  # the fewest components holding 95 % of the energy
+    participation: float  # (sum e)^2 / sum e^2
 
 
 class GenerationRecord(TypedDict):
@@ -66,6 +80,9 @@ class GenerationRecord(TypedDict):
     stop: NotRequired[StopDetail]
     # With an unlabelled pool: this generation's pass over it (filial.pool.figures_of)
     pool: NotRequired[dict[str, Any]]
+    spectrum: NotRequired[SpectrumFigures]  # with the spectral view (spectrum_samples > 0)
+    spectrum_seconds: NotRequired[float]  # its cost in this generation (kernel: generation 0)
+    forecast: NotRequired[dict[str, Any]]  # generation 0: filial.spectral.forecast's result
 
 
 class DecisionState(TypedDict):

@@ -33,6 +33,7 @@ from .reading import (
 )
 from .records import is_number
 from .rundir import HELDOUT_FILE, RECIPE_FILE, STATE_FILE, RecipeRunDirectory, RunDirectory
+from .spectral import compare_forecast
 
 _REASONS = {
     "no-gain": (
@@ -42,6 +43,10 @@ _REASONS = {
     "collapse": "the predictions degenerated ({why}), so the lineage stopped",
     "diverged": "generation {generation}'s loss or outputs were not finite; it is never kept",
     "max-generations": "the last allowed generation (max_generations={max_generations}) finished",
+    "forecast": (
+        "the spectral forecast's best generation ({forecast_best}) was trained "
+        "(spectrum_stop=True)"
+    ),
 }
 # Records written before the stop detail named the last gain.
 _NO_GAIN_BEFORE = (
@@ -306,6 +311,7 @@ def _lineage(
         "gain": first["plain"] if first is not None else None,
         "baseline": baselines.get("matched"),
         "baselines": baselines,
+        "forecast": compare_forecast(records),
         **evidence,
     }
     summary["verdict"] = verdict(summary)
@@ -480,8 +486,10 @@ def generation_table(
     if targets is None:
         targets = "ce" if any("target_entropy" in r for r in records) else "l2"
     column = "target_entropy" if targets == "ce" else "output_norm"
+    spectra = any("spectrum" in r for r in records)
     header = f"{'gen':>4} {'held-out':>9} {'test':>7} {'train':>7} {'ensemble':>9} "
     header += f"{column.replace('_', ' '):>15} {'agree':>6} {'seconds':>8}"
+    header += f" {'95% in':>7}" if spectra else ""
     lines = [header]
 
     def cell(value: Any, width: int) -> str:
@@ -494,9 +502,49 @@ def generation_table(
         lines.append(
             f"{r['generation']:>4} {cell(r['heldout'], 9)} {cell(r['test'], 7)} "
             f"{cell(r['train'], 7)} {cell(r['ensemble'], 9)} {cell(r.get(column), 15)} "
-            f"{cell(r['agreement'], 6)} {r['seconds']:>8.2f}{mark}"
+            f"{cell(r['agreement'], 6)} {r['seconds']:>8.2f}{_components(r, spectra)}{mark}"
         )
     return "\n".join(lines)
+
+
+def _components(record: Mapping[str, Any], spectra: bool) -> str:
+    """The spectral column: the fewest eigencomponents holding 95 % of the output energy."""
+    if not spectra:
+        return ""
+    spectrum = record.get("spectrum")
+    return f" {spectrum['components95']:>7}" if spectrum else f" {'-':>7}"
+
+
+def forecast_lines(found: dict[str, Any] | None) -> list[str]:
+    """The spectral forecast's table beside the run (:func:`filial.spectral.compare_forecast`)."""
+    if found is None:
+        return []
+    out = [
+        f"spectral forecast from generation 0 (kernel ridge on its features, c = "
+        f"{found['ridge']:.3g}; held-out metric per generation)",
+        f"{'gen':>4} {'c fixed':>9} {'c refit':>9} {'actual':>9}",
+    ]
+
+    def cell(value: Any) -> str:
+        return f"{value:>9.4f}" if is_number(value) else f"{'-':>9}"
+
+    for row in found["rows"]:
+        out.append(
+            f"{row['generation']:>4} {cell(row['fixed'])} {cell(row['refit'])} "
+            f"{cell(row['actual'])}"
+        )
+    best, collapse = found["best"], found["collapse"]
+
+    def gen(value: Any) -> str:
+        return "none" if value is None else str(value)
+
+    out.append(
+        f"best generation: forecast {gen(best['fixed'])} (c refit {gen(best['refit'])}), "
+        f"actual {gen(best['actual'])} of 0-{gen(found['trained'])}; collapse: forecast "
+        f"{gen(collapse['fixed'])} (c refit {gen(collapse['refit'])}), recorded "
+        f"{gen(collapse['actual'])}"
+    )
+    return out
 
 
 def _signed(value: float) -> str:
@@ -575,6 +623,7 @@ def _lineage_lines(x: dict[str, Any]) -> list[str]:
     out = ["", f"seed {x['seed']} ({x['targets']} targets, {x['lineage_dir']})"]
     out.append(generation_table(x["records"], x["best"], x["targets"]))
     out.extend(pool_lines(x["records"], x["best"]))
+    out.extend(forecast_lines(x.get("forecast")))
     out.append(f"stopped: {x['stop_in_words']}")
     best = x["best"]
     if best is not None:
@@ -589,19 +638,35 @@ def _lineage_lines(x: dict[str, Any]) -> list[str]:
             "choose)"
         )
         out.extend(_gain_table(x["comparisons"]))
+    out.extend(_cross_fitted_line(x))
+    out.extend(_baseline_lines(x))
+    if x["verdict"].get("text"):
+        out.append(f"verdict: {x['verdict']['text']}")
+    return out
+
+
+def _cross_fitted_line(x: dict[str, Any]) -> list[str]:
+    """The cross-fitted held-out figures of the kept generation and the early-stopped
+    baselines, with the choices made on each half."""
     fitted = x.get("cross_fitted")
-    if fitted is not None:
-        a, b = fitted["choices"]
-        line = (
-            f"cross-fitted held-out: {fitted['kept']:.4f} with generations (generation {a} "
-            f"chosen on one half, {b} on the other)"
-        )
-        for c in x["comparisons"]:
-            detail = c.get("detail") or {}
-            if "cross_fitted" in detail:
-                a, b = (e + 1 for e in detail["cross_fitted_epochs"])
-                line += f"; {detail['cross_fitted']:.4f} {c['against']} (epochs {a} and {b})"
-        out.append(line)
+    if fitted is None:
+        return []
+    a, b = fitted["choices"]
+    line = (
+        f"cross-fitted held-out: {fitted['kept']:.4f} with generations (generation {a} "
+        f"chosen on one half, {b} on the other)"
+    )
+    for c in x["comparisons"]:
+        detail = c.get("detail") or {}
+        if "cross_fitted" in detail:
+            a, b = (e + 1 for e in detail["cross_fitted_epochs"])
+            line += f"; {detail['cross_fitted']:.4f} {c['against']} (epochs {a} and {b})"
+    return [line]
+
+
+def _baseline_lines(x: dict[str, Any]) -> list[str]:
+    """One line per baseline: its held-out and test figures (and what the matched one shows)."""
+    out = []
     for name, record in x["baselines"].items():
         head = _baseline_head(name, record)
         if record.get("heldout") is None:
@@ -613,8 +678,6 @@ def _lineage_lines(x: dict[str, Any]) -> list[str]:
         if name == "matched":
             line += _matched_shows(x, record)
         out.append(line)
-    if x["verdict"].get("text"):
-        out.append(f"verdict: {x['verdict']['text']}")
     return out
 
 

@@ -29,7 +29,13 @@ from .store import STORE_DTYPES
 
 TEACHER_MODES = ("cached", "online")
 # Settings added after the first format of lineage.json: a run written before them used these.
-_ADDED_LATER: dict[str, Any] = {"teacher_mode": "cached", "replayed": False, "pool": None}
+_ADDED_LATER: dict[str, Any] = {
+    "teacher_mode": "cached",
+    "replayed": False,
+    "spectrum_samples": 0,
+    "spectrum_stop": False,
+    "pool": None,
+}
 
 
 @dataclass(frozen=True)
@@ -46,6 +52,8 @@ class Settings:
     store_dtype: str = "float16"
     top_k: int | None = None
     teacher_mode: str = "cached"
+    spectrum_samples: int = 0  # the spectral view's subset size (0: no view; filial.spectral)
+    spectrum_stop: bool = False  # the stop rule may end the lineage at the forecast's best
     seed: int = 0
 
     @classmethod
@@ -57,6 +65,7 @@ class Settings:
         _check_loss_and_rule(problems, values)
         _check_store(problems, values)
         _check_teacher(problems, values)
+        _check_spectrum(problems, values)
         values["seed"] = problems.attempt(lambda: as_count(values["seed"], "seed", minimum=0))
         if len(problems) > before:
             return None
@@ -131,6 +140,22 @@ def _check_teacher(problems: Problems, values: dict[str, Any]) -> None:
                 f"views={views} caches several augmented views per sample; "
                 "teacher_mode='online' caches none (its teacher sees every augmented batch). "
                 "Use views=1 with it."
+            )
+        )
+
+
+def _check_spectrum(problems: Problems, values: dict[str, Any]) -> None:
+    values["spectrum_samples"] = problems.attempt(
+        lambda: as_count(values["spectrum_samples"], "spectrum_samples", minimum=0)
+    )
+    stop = values["spectrum_stop"]
+    if not isinstance(stop, bool):
+        problems.add(ValueError(f"spectrum_stop must be True or False, but got {stop!r}"))
+    elif stop and not values["spectrum_samples"]:
+        problems.add(
+            ValueError(
+                "spectrum_stop=True stops at the spectral forecast's best generation, which "
+                "needs the spectral view: give spectrum_samples (e.g. 2000) as well"
             )
         )
 

@@ -42,7 +42,7 @@ import torch
 from .metrics import accuracy
 from .records import is_number
 
-STOP_REASONS = ("no-gain", "collapse", "diverged", "max-generations")
+STOP_REASONS = ("no-gain", "collapse", "diverged", "max-generations", "forecast")
 
 
 @dataclass(frozen=True)

@@ -19,6 +19,14 @@ run writes the same values as one that went straight through. Under a TensorBoar
     per-epoch curves (``epoch/loss``, ``epoch/running accuracy vs labels``, ...) and the
     generation's figures as one point at step G (``generation/held-out``, ``generation/test``,
     ``generation/train vs labels``, ...). A series of one point is never smoothed.
+``seedS/spectrum``, ``seedS/forecast``, ``seedS/forecast c refit`` (with the spectral view)
+    ``spectrum/...``: the share of output energy in the top 1 %, 10 %, 50 % of eigen-indices and
+    the rest, the components holding 95 % and the participation ratio, one point per generation
+    (a curve over generations); ``spectrum/energy by eigen-index``: a histogram per generation
+    (step G) of where the training outputs' energy lies along the eigen-index of generation 0's
+    kernel (buckets of indices, heights: energy shares). The forecast runs hold
+    ``generation/held-out`` as predicted from generation 0 (:func:`filial.spectral.forecast`),
+    so the held-out chart shows them beside the generations' own points.
 ``seedS/baseline NAME``
     the baseline's per-epoch curves (``epoch/held-out`` where the record has it) and its figures
     as levels over the generation axis.
@@ -57,6 +65,17 @@ from .records import is_number
 from .stopping import StopRule
 
 ARMS = "arms"
+SPECTRUM_RUN = "spectrum"
+FORECAST_RUN = "forecast"
+_SPECTRUM_NAMES = {
+    "top1": "energy share, top 1 % of eigen-indices",
+    "top10": "energy share, top 10 %",
+    "top50": "energy share, top 50 %",
+    "rest": "energy share, rest",
+    "outside": "energy share, outside the kernel's span",
+    "components95": "components holding 95 %",
+    "participation": "participation ratio",
+}
 WITH = "with generations"
 ALONE = "generation 0 alone"
 HPARAMS_RUN = "hparams"
@@ -157,6 +176,29 @@ def _epoch_curves(writer: SummaryWriter, epochs: Sequence[Mapping[str, Any]]) ->
             if key != "epoch" and is_number(value):
                 name = _EPOCH_NAMES.get(key, key.replace("_", " "))
                 writer.add_scalar(f"epoch/{name}", value, step)
+
+
+def _energy_histogram(writer: SummaryWriter, energies: Any, step: int, buckets: int = 50) -> None:
+    """Energy shares by eigen-index as a TensorBoard histogram: ``buckets`` equal ranges of
+    the index (0 = the largest eigenvalue), each bucket's height its share of the energy."""
+    import numpy as np
+
+    shares = np.asarray(energies, dtype=np.float64) / float(np.sum(energies))
+    m = len(shares)
+    edges = np.linspace(0, m, min(buckets, m) + 1)
+    index = np.arange(m)
+    counts = np.histogram(index, bins=edges, weights=shares)[0]
+    writer.add_histogram_raw(
+        "spectrum/energy by eigen-index",
+        min=0.0,
+        max=float(m - 1),
+        num=float(counts.sum()),
+        sum=float((index * shares).sum()),
+        sum_squares=float((index**2 * shares).sum()),
+        bucket_limits=edges[1:].tolist(),
+        bucket_counts=counts.tolist(),
+        global_step=step,
+    )
 
 
 def _levels(writer: SummaryWriter, tag: str, value: float, steps: Sequence[int]) -> None:
@@ -539,6 +581,29 @@ class TensorBoardLog:
         elif not self._records or self._records[-1]["generation"] != index:
             self._records.append(record)
         self._arms()
+
+    def spectrum(self, record: Mapping[str, Any], energies: Any) -> None:
+        """A generation's spectral figures (``record["spectrum"]``), the histogram of its
+        per-eigen-index ``energies`` (a numpy vector, or None), and after generation 0 the
+        forecast's runs."""
+        index = int(record["generation"])
+        figures = record.get("spectrum")
+        if figures is None:
+            return
+        with _Writer(self.folder / SPECTRUM_RUN, self._open) as writer:  # one file a process
+            for key, name in _SPECTRUM_NAMES.items():
+                if is_number(figures.get(key)):
+                    writer.add_scalar(f"spectrum/{name}", figures[key], index)
+            if energies is not None and len(energies) and float(energies.sum()) > 0:
+                _energy_histogram(writer, energies, index)
+        found = record.get("forecast")
+        if found is None:
+            return
+        for run, regime in ((FORECAST_RUN, "fixed"), (f"{FORECAST_RUN} c refit", "refit")):
+            with _Writer(self.folder / run) as writer:
+                for step, value in enumerate(found[regime]["heldout"]):
+                    if is_number(value):
+                        writer.add_scalar("generation/held-out", value, step)
 
     def baseline(
         self,
