@@ -419,13 +419,7 @@ def check_counts(counts: np.ndarray, outside: Found) -> None:
         problem = _coverage_problem(
             size, (beyond[0], examples), (totals[0], missing), (totals[1], twice)
         )
-    (failed,) = broadcast_ints([int(bool(problem))] if is_main() else None, 1)
-    if failed:
-        raise CoverageError(
-            problem
-            or "rank 0 found that the evaluation pass did not cover the dataset exactly "
-            "once; the indices are named in rank 0's error"
-        )
+    raise_everywhere(problem)
 
 
 def _first_outside(outside: Found) -> list[int]:
@@ -485,13 +479,7 @@ def gather_indexed(
             )
         except CoverageError as exc:
             problem = str(exc)
-    (failed,) = broadcast_ints([int(bool(problem))] if is_main() else None, 1)
-    if failed:
-        raise CoverageError(
-            problem
-            or "rank 0 found that the evaluation pass did not cover the dataset exactly "
-            "once; the indices are named in rank 0's error"
-        )
+    raise_everywhere(problem)
     return assembled
 
 
@@ -541,3 +529,15 @@ def _gather(tensor: torch.Tensor) -> list[torch.Tensor] | None:
     parts = [torch.empty_like(tensor) for _ in range(world_size())] if is_main() else None
     torch.distributed.gather(tensor, parts, dst=MAIN)
     return parts
+
+
+def raise_everywhere(problem: str) -> None:
+    """Rank 0's coverage verdict (``problem``, empty when there is none) told to every rank,
+    each of which raises :class:`CoverageError` on a problem (issue this on every rank)."""
+    (failed,) = broadcast_ints([int(bool(problem))] if is_main() else None, 1)
+    if failed:
+        raise CoverageError(
+            problem
+            or "rank 0 found that the evaluation pass did not cover the dataset exactly "
+            "once; the indices are named in rank 0's error"
+        )
