@@ -59,7 +59,29 @@ def _fmt(band: Any) -> str:
 
 def _panel(ax: Any, c: Comparison, label: str) -> None:
     steps = c.steps
-    # each seed, thin; the generations only some seeds reached get open markers
+    _seed_lines(ax, c)
+    mean, std = _mean_band(ax, c)
+    lo, hi, pad = _y_range(c, mean, std)
+    left, right = steps[0] - 0.2, max(steps[-1], 1) + 0.2
+    _alone_level(ax, c)
+    lo, hi = _baseline_levels(ax, c, lo, hi, pad, right)
+    ax.set_ylim(lo, hi)
+    ax.set_xlim(left, right)
+    ax.set_xticks(steps)
+    ax.set_xlabel("generation")
+    ax.set_ylabel(f"{c.key.replace('heldout', 'held-out')} metric (higher is better)")
+    ax.grid(True, alpha=0.3)
+    head = f"{label}\nkept generation {_fmt(c.kept)}, generation 0 {_fmt(c.alone)}"
+    if c.kept_gain is not None:
+        head += f"\ngain of the kept generation {c.kept_gain.mean:+.4f}"
+        if c.kept_gain.seeds > 1:
+            head += f" -+ {c.kept_gain.std:.4f} (sd over {c.kept_gain.seeds} seeds)"
+    ax.set_title(head, fontsize=10)
+
+
+def _seed_lines(ax: Any, c: Comparison) -> None:
+    """Each seed, thin; the generations only some seeds reached get open markers; each seed's
+    kept generation a star."""
     common = len(c.curve)
     for i, (_, values, kept) in enumerate(c.per_seed):
         xs = [g for g, v in enumerate(values) if v is not None]
@@ -97,6 +119,11 @@ def _panel(ax: Any, c: Comparison, label: str) -> None:
                 markeredgecolor="black",
                 label="kept generation (each seed)" if i == 0 else None,
             )
+
+
+def _mean_band(ax: Any, c: Comparison) -> tuple[np.ndarray, np.ndarray]:
+    """The mean over seeds of the generations every seed reached, with one sd."""
+    common = len(c.curve)
     xs = list(range(common))
     mean = np.array([b.mean for b in c.curve])
     std = np.array([b.std for b in c.curve])
@@ -109,7 +136,11 @@ def _panel(ax: Any, c: Comparison, label: str) -> None:
         marker="o",
         label=f"with generations, mean of {c.seeds} seed(s)",
     )
-    # the y range: the generations and generation 0; baselines far outside sit at the edge
+    return mean, std
+
+
+def _y_range(c: Comparison, mean: np.ndarray, std: np.ndarray) -> tuple[float, float, float]:
+    """The y range: the generations and generation 0 (baselines far outside sit at the edge)."""
     inside = [v for _, values, _ in c.per_seed for v in values if v is not None]
     inside += list(mean - std) + list(mean + std)
     if c.alone is not None:
@@ -117,22 +148,34 @@ def _panel(ax: Any, c: Comparison, label: str) -> None:
     low, high = min(inside), max(inside)
     pad = max(high - low, 1e-3) * 0.12
     lo, hi = low - pad, high + pad
-    left, right = steps[0] - 0.2, max(steps[-1], 1) + 0.2
-    if c.alone is not None:
-        ax.axhspan(
-            c.alone.mean - c.alone.std,
-            c.alone.mean + c.alone.std,
-            color=_ALONE,
-            alpha=0.08,
-            linewidth=0,
-        )
-        ax.axhline(
-            c.alone.mean,
-            color=_ALONE,
-            linestyle="--",
-            linewidth=1.6,
-            label=f"generation 0 alone: {_fmt(c.alone)}",
-        )
+    return lo, hi, pad
+
+
+def _alone_level(ax: Any, c: Comparison) -> None:
+    """Generation 0 alone as a level across the axis, with its band."""
+    if c.alone is None:
+        return
+    ax.axhspan(
+        c.alone.mean - c.alone.std,
+        c.alone.mean + c.alone.std,
+        color=_ALONE,
+        alpha=0.08,
+        linewidth=0,
+    )
+    ax.axhline(
+        c.alone.mean,
+        color=_ALONE,
+        linestyle="--",
+        linewidth=1.6,
+        label=f"generation 0 alone: {_fmt(c.alone)}",
+    )
+
+
+def _baseline_levels(
+    ax: Any, c: Comparison, lo: float, hi: float, pad: float, right: float
+) -> tuple[float, float]:
+    """Each baseline as a level; one far off the scale as an arrow at the edge with its value.
+    Returns the y range widened by the levels drawn."""
     span = hi - lo
     for j, (name, (level, _)) in enumerate(sorted(c.baselines.items())):
         colour = _BASELINES[j % len(_BASELINES)]
@@ -155,18 +198,7 @@ def _panel(ax: Any, c: Comparison, label: str) -> None:
                 arrowprops={"arrowstyle": "->", "color": colour},
             )
             ax.plot([], [], color=colour, linestyle="-.", label=f"{text}, off the axis")
-    ax.set_ylim(lo, hi)
-    ax.set_xlim(left, right)
-    ax.set_xticks(steps)
-    ax.set_xlabel("generation")
-    ax.set_ylabel(f"{c.key.replace('heldout', 'held-out')} metric (higher is better)")
-    ax.grid(True, alpha=0.3)
-    head = f"{label}\nkept generation {_fmt(c.kept)}, generation 0 {_fmt(c.alone)}"
-    if c.kept_gain is not None:
-        head += f"\ngain of the kept generation {c.kept_gain.mean:+.4f}"
-        if c.kept_gain.seeds > 1:
-            head += f" -+ {c.kept_gain.std:.4f} (sd over {c.kept_gain.seeds} seeds)"
-    ax.set_title(head, fontsize=10)
+    return lo, hi
 
 
 def figure(views: Sequence[SeedView]) -> Any:
