@@ -83,6 +83,7 @@ def _seed_lines(ax: Any, c: Comparison) -> None:
     """Each seed, thin; the generations only some seeds reached get open markers; each seed's
     kept generation a star."""
     common = len(c.curve)
+    marked = False
     for i, (_, values, kept) in enumerate(c.per_seed):
         xs = [g for g, v in enumerate(values) if v is not None]
         ys = [values[g] for g in xs]
@@ -97,7 +98,7 @@ def _seed_lines(ax: Any, c: Comparison) -> None:
             label="each seed" if i == 0 else None,
         )
         extra = [g for g in xs if g >= common]
-        if extra:
+        if extra:  # the legend names the open marker once, at the first seed that has one
             ax.plot(
                 extra,
                 [values[g] for g in extra],
@@ -106,8 +107,9 @@ def _seed_lines(ax: Any, c: Comparison) -> None:
                 markersize=7,
                 markerfacecolor="white",
                 markeredgecolor=_WITH,
-                label="generation not every seed reached" if i == 0 else None,
+                label=None if marked else "generation not every seed reached",
             )
+            marked = True
         if kept is not None and kept < len(values) and values[kept] is not None:
             ax.plot(
                 [kept],
