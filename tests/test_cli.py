@@ -239,8 +239,15 @@ def test_ctrl_c_leaves_a_resumable_run(small_recipe, tmp_path):
         "training.epochs=40",
     ]
     env = {**os.environ, "PYTHONUNBUFFERED": "1"}
+    # A job started in the background of a non-interactive shell inherits SIGINT ignored, and
+    # Python then keeps ignoring it: give the child the default disposition, as a terminal does.
     process = subprocess.Popen(
-        command, stderr=subprocess.PIPE, stdout=subprocess.PIPE, text=True, env=env
+        command,
+        stderr=subprocess.PIPE,
+        stdout=subprocess.PIPE,
+        text=True,
+        env=env,
+        preexec_fn=lambda: signal.signal(signal.SIGINT, signal.SIG_DFL),
     )
     lines = []
     for line in process.stderr:
