@@ -343,11 +343,17 @@ class IndexedCollate:
             return list(fetched.codes), inputs, labels
         if self.store is None:
             return inputs, labels, None
-        views = None if fetched.views is None else np.asarray(fetched.views, dtype=np.int64)
-        rows = self.store.gather(np.asarray(fetched.indices, dtype=np.int64), views)
-        if isinstance(rows, tuple):  # a top-k store: the k values and their classes
-            return inputs, labels, TopKTargets(torch.from_numpy(rows[0]), torch.from_numpy(rows[1]))
-        return inputs, labels, torch.from_numpy(rows)
+        return inputs, labels, gathered_targets(self.store, fetched)
+
+
+def gathered_targets(store: TargetStore, fetched: _Fetched) -> Any:
+    """The store's rows of a fetched batch (its samples, in their views), as tensors: one
+    vectorised gather; a top-k store gives :class:`TopKTargets` (the k values, their classes)."""
+    views = None if fetched.views is None else np.asarray(fetched.views, dtype=np.int64)
+    rows = store.gather(np.asarray(fetched.indices, dtype=np.int64), views)
+    if isinstance(rows, tuple):
+        return TopKTargets(torch.from_numpy(rows[0]), torch.from_numpy(rows[1]))
+    return torch.from_numpy(rows)
 
 
 def _common_settings(loader: DataLoader) -> dict[str, Any]:

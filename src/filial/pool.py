@@ -66,6 +66,7 @@ from .data import (
     _common_settings,
     _Fetched,
     batch_size_of,
+    gathered_targets,
     split_pair,
 )
 from .errors import InputError, Problems
@@ -751,14 +752,6 @@ def _cat_targets(first: Any, second: Any) -> Any:
     return torch.cat([first, second])
 
 
-def _rows(store: TargetStore, fetched: _Fetched) -> Any:
-    views = None if fetched.views is None else np.asarray(fetched.views, dtype=np.int64)
-    rows = store.gather(np.asarray(fetched.indices, dtype=np.int64), views)
-    if isinstance(rows, tuple):
-        return TopKTargets(torch.from_numpy(rows[0]), torch.from_numpy(rows[1]))
-    return torch.from_numpy(rows)
-
-
 def check_no_label(labels: Any) -> None:
     """Refuse training labels that use the pool's "no label" value."""
     if isinstance(labels, torch.Tensor) and bool((labels == NO_LABEL).any()):
@@ -795,11 +788,11 @@ class MixedCollate:
             labels = torch.as_tensor(labels)
             if bool((labels == NO_LABEL).any()):
                 raise LoaderContractError(_NO_LABEL_USED)
-            parts.append((inputs, labels, _rows(self.store, fetched.labelled)))
+            parts.append((inputs, labels, gathered_targets(self.store, fetched.labelled)))
         if fetched.pool is not None:
             inputs = self.pool_collate(fetched.pool.samples)[0]
             labels = torch.full((len(fetched.pool.samples),), NO_LABEL, dtype=torch.int64)
-            parts.append((inputs, labels, _rows(self.pool, fetched.pool)))
+            parts.append((inputs, labels, gathered_targets(self.pool, fetched.pool)))
         if len(parts) == 1:
             return parts[0]
         (a_in, a_lab, a_t), (b_in, b_lab, b_t) = parts
